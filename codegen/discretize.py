@@ -1,0 +1,144 @@
+"""Stage 3: Model + Method + dt -> StepProgram, the step as straight-line assignments.
+
+The step program keeps the stages as arrays (one rate evaluation per stage) and the model's rate
+function as one block of assignments, which the simplify stage then reduces with CSE. Substituting
+stages into each other as expressions would multiply the tree size and end with more operations.
+
+References
+----------
+HNW I, section II.1: the explicit Runge-Kutta step y1 = y0 + h * sum_i b_i k_i,
+k_i = f(t0 + c_i h, y0 + h * sum_j a_ij k_j).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import sympy as sp
+
+from .errors import MethodError
+from .method import Tableau
+from .model import Model
+
+
+@dataclass(frozen=True)
+class Assign:
+    """One assignment ``target = expr`` of straight-line code."""
+
+    target: sp.Symbol
+    expr: sp.Expr
+
+
+@dataclass(frozen=True)
+class Block:
+    """Straight-line code: temporaries first, then the results in order.
+
+    inputs: the symbols the block reads; results: (name, expression) pairs it produces.
+    """
+
+    temporaries: tuple[Assign, ...]
+    results: tuple[tuple[str, sp.Expr], ...]
+
+    def operation_count(self) -> int:
+        exprs = [a.expr for a in self.temporaries] + [e for _, e in self.results]
+        return int(sum(sp.count_ops(e, visual=False) for e in exprs))
+
+
+@dataclass(frozen=True)
+class Stage:
+    """Stage i of an explicit step: k_i = f(t + c_i h, x + sum_j (h a_ij) k_j).
+
+    terms holds (j, h*a_ij) for the non-zero a_ij only, as exact values.
+    """
+
+    index: int
+    c: sp.Expr
+    time_offset: sp.Expr
+    terms: tuple[tuple[int, sp.Expr], ...]
+
+
+@dataclass(frozen=True)
+class StepProgram:
+    """The discretized step: what one substep of length h computes, before simplification.
+
+    h = dt / substeps; weights are (j, h*b_j) for the stages that contribute.
+    """
+
+    model: Model
+    method: Tableau
+    dt: sp.Rational
+    substeps: int
+    rates: Block
+    outputs: Block
+    stages: tuple[Stage, ...]
+    weights: tuple[tuple[int, sp.Expr], ...]
+    error_weights: tuple[tuple[int, sp.Expr], ...] = ()
+
+    @property
+    def h(self) -> sp.Rational:
+        return self.dt / self.substeps
+
+    @property
+    def rate_evaluations(self) -> int:
+        return len(self.stages)
+
+
+def exact_dt(dt) -> sp.Rational:
+    """A step size as the exact decimal the user wrote (0.001 -> 1/1000)."""
+    value = sp.Rational(repr(float(dt))) if not isinstance(dt, sp.Rational) else dt
+    if not value > 0:
+        raise MethodError(f"--dt: must be a positive number of seconds, got {dt}")
+    return value
+
+
+def rate_block(model: Model) -> Block:
+    """The rate function f as a block: baked parameters substituted by their exact values."""
+    baked = model.baked
+    return Block(temporaries=(),
+                 results=tuple((s.name, s.rate.xreplace(baked)) for s in model.states))
+
+
+def output_block(model: Model) -> Block:
+    baked = model.baked
+    return Block(temporaries=(),
+                 results=tuple((o.name, o.resolved.xreplace(baked)) for o in model.outputs))
+
+
+def needed_stages(method: Tableau, with_error: bool) -> list[int]:
+    """Stages whose rate is used by the update, the error estimate or a later needed stage."""
+    s = method.stages
+    used = {j for j in range(s) if method.b[j] != 0}
+    if with_error and method.b_hat is not None:
+        used |= {j for j in range(s) if method.b_hat[j] != method.b[j]}
+    for i in reversed(range(s)):
+        if i in used:
+            used |= {j for j in range(i) if method.a[i][j] != 0}
+    return sorted(used)
+
+
+def discretize(model: Model, method: Tableau, dt, substeps: int = 1,
+               error_estimate: bool = False) -> StepProgram:
+    """Build the explicit step program for one substep h = dt / substeps."""
+    if not method.is_explicit:
+        raise MethodError(f"{method.id}: {method.kind} tableaux need the implicit step generator")
+    if not isinstance(substeps, int) or substeps < 1:
+        raise MethodError(f"--substeps: must be a whole number >= 1, got {substeps}")
+    if error_estimate and method.b_hat is None:
+        raise MethodError(f"{method.id}: has no embedded weights (b_hat); the error estimate needs "
+                          "an embedded pair such as bs3 or dp5")
+    dt = exact_dt(dt)
+    h = dt / substeps
+    keep = needed_stages(method, error_estimate)
+    stages = tuple(
+        Stage(index=i, c=method.c[i], time_offset=method.c[i] * h,
+              terms=tuple((j, h * method.a[i][j]) for j in range(i)
+                          if method.a[i][j] != 0))
+        for i in keep)
+    weights = tuple((j, h * method.b[j]) for j in keep if method.b[j] != 0)
+    error_weights = ()
+    if error_estimate:
+        error_weights = tuple((j, h * (method.b[j] - method.b_hat[j])) for j in keep
+                              if method.b[j] != method.b_hat[j])
+    return StepProgram(model=model, method=method, dt=dt, substeps=substeps,
+                       rates=rate_block(model), outputs=output_block(model), stages=stages,
+                       weights=weights, error_weights=error_weights)

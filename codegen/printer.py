@@ -1,0 +1,184 @@
+"""C expression printer: sympy expressions to C99 text in float or double precision.
+
+Behaviour is driven by small tables (function names per precision). Literals are printed from exact
+values, correctly rounded to the target precision; small integer powers become multiplications;
+pi and e become literals (M_PI is double and not C99).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from fractions import Fraction
+
+import numpy as np
+import sympy as sp
+from sympy.printing.c import C99CodePrinter
+
+FLOAT = "float"
+DOUBLE = "double"
+PRECISIONS = (FLOAT, DOUBLE)
+
+# Digits that let a value round-trip: 9 for IEEE binary32, 17 for binary64.
+ROUND_TRIP_DIGITS = {FLOAT: 9, DOUBLE: 17}
+# Precision used to evaluate exact values before rounding them once to the target format.
+EXACT_DIGITS = 50
+# Largest integer power written out as multiplications; beyond it powf/pow is cheaper in code size.
+MAX_EXPANDED_POWER = 4
+
+_MATH = {  # sympy function -> C99 math.h name (double); float appends 'f'
+    "sin": "sin", "cos": "cos", "tan": "tan", "asin": "asin", "acos": "acos", "atan": "atan",
+    "atan2": "atan2", "sinh": "sinh", "cosh": "cosh", "tanh": "tanh", "exp": "exp", "log": "log",
+    "Abs": "fabs", "floor": "floor", "ceiling": "ceil", "Min": "fmin", "Max": "fmax",
+}
+
+
+def rounded(value: sp.Expr, precision: str) -> float:
+    """The exact value correctly rounded to the target floating-point format."""
+    exact = Fraction(str(sp.Float(sp.N(value, EXACT_DIGITS), EXACT_DIGITS)))
+    as_double = float(exact)
+    if precision == DOUBLE:
+        return as_double
+    f = np.float32(as_double)
+    candidates = [f, np.nextafter(f, np.float32(np.inf)), np.nextafter(f, np.float32(-np.inf))]
+    best = min(candidates, key=lambda v: abs(Fraction(float(v)) - exact))
+    return float(best)
+
+
+def literal(value, precision: str) -> str:
+    """A C floating literal for an exact value, with enough digits to round-trip."""
+    v = rounded(sp.sympify(value), precision)
+    if not np.isfinite(v):
+        raise ValueError(f"value {value} does not fit in {precision}")
+    if precision == FLOAT:
+        text = f"{np.float32(v):.{ROUND_TRIP_DIGITS[FLOAT]}g}"
+        if float(np.float32(text)) != v:  # pragma: no cover - guarded by the round-trip test
+            raise AssertionError(f"literal {text} does not round-trip")
+    else:
+        text = repr(v)
+    if "e" not in text and "." not in text and "inf" not in text:
+        text += ".0"
+    if "e" in text and "." not in text.split("e")[0]:
+        mantissa, exponent = text.split("e")
+        text = f"{mantissa}.0e{exponent}"
+    return text + ("F" if precision == FLOAT else "")
+
+
+class StepPrinter(C99CodePrinter):
+    """sympy's C99 printer with float/double literals and functions, and expanded small powers."""
+
+    def __init__(self, precision: str):
+        super().__init__({"math_macros": {}})
+        self.precision = precision
+        self.suffix = "f" if precision == FLOAT else ""
+
+    def _lit(self, value) -> str:
+        return literal(value, self.precision)
+
+    def _print_Integer(self, expr):
+        return self._lit(expr)
+
+    def _print_Rational(self, expr):
+        return self._lit(expr)
+
+    def _print_Float(self, expr):
+        return self._lit(expr)
+
+    def _print_NumberSymbol(self, expr):
+        return self._lit(expr)
+
+    _print_Pi = _print_NumberSymbol
+    _print_Exp1 = _print_NumberSymbol
+
+    def _print_Pow(self, expr):
+        base, e = expr.base, expr.exp
+        PREC = sp.printing.precedence.precedence(expr)
+        if base == sp.E:
+            return f"exp{self.suffix}({self._print(e)})"
+        if e.is_Integer and 1 <= abs(int(e)) <= MAX_EXPANDED_POWER:
+            b = self.parenthesize(base, PREC)
+            product = "*".join([b] * abs(int(e)))
+            if int(e) > 0:
+                return f"({product})" if abs(int(e)) > 1 else product
+            return f"({self._lit(1)}/({product}))"
+        if e == sp.Rational(1, 2):
+            return f"sqrt{self.suffix}({self._print(base)})"
+        if e == -sp.Rational(1, 2):
+            return f"({self._lit(1)}/sqrt{self.suffix}({self._print(base)}))"
+        return f"pow{self.suffix}({self._print(base)}, {self._print(e)})"
+
+    def _print_Function(self, expr):
+        name = type(expr).__name__
+        if name in _MATH:
+            args = ", ".join(self._print(a) for a in expr.args)
+            if name in ("Min", "Max") and len(expr.args) > 2:
+                first, rest = expr.args[0], type(expr)(*expr.args[1:])
+                args = f"{self._print(first)}, {self._print(rest)}"
+            return f"{_MATH[name]}{self.suffix}({args})"
+        raise ValueError(f"function '{name}' has no C translation")
+
+    _print_Abs = _print_Function
+    _print_Min = _print_Function
+    _print_Max = _print_Function
+    _print_floor = _print_Function
+    _print_ceiling = _print_Function
+    _print_sin = _print_Function
+    _print_cos = _print_Function
+    _print_tan = _print_Function
+    _print_asin = _print_Function
+    _print_acos = _print_Function
+    _print_atan = _print_Function
+    _print_atan2 = _print_Function
+    _print_sinh = _print_Function
+    _print_cosh = _print_Function
+    _print_tanh = _print_Function
+    _print_exp = _print_Function
+    _print_log = _print_Function
+
+    def _print_sign(self, expr):
+        x = self._print(expr.args[0])
+        zero, one = self._lit(0), self._lit(1)
+        return f"(({x} > {zero}) ? {one} : (({x} < {zero}) ? -{one} : {zero}))"
+
+    def _print_Piecewise(self, expr):
+        *pieces, (last, cond) = expr.args
+        if cond is not sp.true:
+            raise ValueError("Piecewise needs a final (value, True) branch")
+        text = self._print(last)
+        for value, condition in reversed(pieces):
+            text = f"(({self._print(condition)}) ? ({self._print(value)}) : ({text}))"
+        return text
+
+    def _print_Relational(self, expr):
+        return f"({self._print(expr.lhs)} {expr.rel_op} {self._print(expr.rhs)})"
+
+    def _print_And(self, expr):
+        return "(" + " && ".join(self._print(a) for a in sorted(expr.args, key=sp.default_sort_key)) + ")"
+
+    def _print_Or(self, expr):
+        return "(" + " || ".join(self._print(a) for a in sorted(expr.args, key=sp.default_sort_key)) + ")"
+
+    def _print_Not(self, expr):
+        return f"(!{self._print(expr.args[0])})"
+
+    def _print_BooleanTrue(self, expr):
+        return "1"
+
+    def _print_BooleanFalse(self, expr):
+        return "0"
+
+
+@dataclass(frozen=True)
+class Printer:
+    """Prints expressions and literals for one precision."""
+
+    precision: str
+
+    def expr(self, e) -> str:
+        return StepPrinter(self.precision).doprint(e)
+
+    def literal(self, value) -> str:
+        return literal(value, self.precision)
+
+    @property
+    def real(self) -> str:
+        return self.precision
