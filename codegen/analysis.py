@@ -1,0 +1,758 @@
+"""Properties of a Runge-Kutta method from its tableau: order (rooted trees) and linear stability.
+
+Tableau -> MethodReport. Everything that decides a yes/no question (is a condition satisfied, is
+the method A-stable, where does a stability interval end) is decided in exact arithmetic; floating
+point (mpmath at 50 digits) is only a fast filter in front of the exact test and the final rounding
+of a limit to a float.
+
+References
+----------
+Butcher, The Numerical Analysis of Ordinary Differential Equations, 1987 (rooted trees, elementary
+weights, densities).
+HNW: Hairer, Norsett & Wanner, Solving Ordinary Differential Equations I, 2nd ed., 1993, II.2-II.3
+(order conditions), IV.2 (stability domains of explicit methods).
+HW: Hairer & Wanner, Solving Ordinary Differential Equations II, 2nd ed., 1996, IV.3 (stability
+function, det formula, A- and L-stability, E-polynomial), IV.7 (Rosenbrock methods).
+"""
+
+from __future__ import annotations
+
+import functools
+import math
+from dataclasses import dataclass
+
+import mpmath
+import numpy as np
+import sympy as sp
+
+from .analysis_data import ROSENBROCK_METHODS
+from .errors import MethodError
+from .method import Tableau, exact
+
+# The variable of the stability function, z = h * lambda.
+Z = sp.Symbol("z")
+
+# Working precision of the numerical filters; residuals of exact data are then below 1e-45.
+_DIGITS = 50
+# A numerical residual above this is certainly not an exact zero at _DIGITS working precision.
+_NUMERIC_ZERO = mpmath.mpf("1e-40")
+# Slack of the numerical region test, for points on the boundary |R| = 1 (double rounding).
+_REGION_SLACK = 1e-12
+
+Tree = tuple  # a rooted tree: the sorted tuple of its children's trees; () is the single node
+
+
+# ---------------------------------------------------------------------------------------------
+# Rooted trees and order conditions
+# ---------------------------------------------------------------------------------------------
+
+def _canonical(children) -> Tree:
+    return tuple(sorted(children))
+
+
+def _grow(tree: Tree):
+    """Every tree obtained by attaching one new leaf to some node of tree."""
+    yield _canonical(tree + ((),))
+    for i, child in enumerate(tree):
+        if i > 0 and child == tree[i - 1]:
+            continue  # the same subtree again gives the same trees
+        for grown in _grow(child):
+            yield _canonical(tree[:i] + (grown,) + tree[i + 1:])
+
+
+@functools.lru_cache(maxsize=None)
+def rooted_trees(order: int) -> tuple[Tree, ...]:
+    """All rooted trees with `order` nodes, each as a sorted tuple of subtrees, in a fixed order.
+
+    References
+    ----------
+    Butcher 1987; the counts are OEIS A000081.
+    """
+    if order < 1:
+        raise ValueError("a rooted tree has at least one node")
+    if order == 1:
+        return ((),)
+    grown = {g for tree in rooted_trees(order - 1) for g in _grow(tree)}
+    return tuple(sorted(grown))
+
+
+def _tree_order(tree: Tree) -> int:
+    return 1 + sum(_tree_order(child) for child in tree)
+
+
+def _density(tree: Tree) -> int:
+    return _tree_order(tree) * math.prod(_density(child) for child in tree)
+
+
+def _symmetry(tree: Tree) -> int:
+    result = 1
+    for i, child in enumerate(tree):
+        if i > 0 and child == tree[i - 1]:
+            continue
+        m = tree.count(child)
+        result *= math.factorial(m) * _symmetry(child) ** m
+    return result
+
+
+def _notation(tree: Tree) -> str:
+    if not tree:
+        return "τ"
+    return "[" + ",".join(_notation(child) for child in tree) + "]"
+
+
+@dataclass(frozen=True)
+class OrderCondition:
+    """One order condition b^T Phi(t) = 1 / gamma(t) for the rooted tree t.
+
+    tree is the nested tuple form, order its number of nodes, density gamma(t), symmetry sigma(t).
+
+    References
+    ----------
+    Butcher 1987; HNW I, section II.2, Theorem 2.13 (from memory).
+    """
+
+    tree: Tree
+    order: int
+    density: int
+    symmetry: int
+
+    @property
+    def notation(self) -> str:
+        """Bracket notation: τ is one node, [t1,...,tm] grafts t1..tm onto a new root."""
+        return _notation(self.tree)
+
+    def elementary_weight(self, a, b) -> sp.Expr:
+        """The elementary weight Phi(t) = sum_i b_i g_i(t) for the s x s matrix a and weights b."""
+        cache: dict = {}
+        return _expand(sum(bi * gi for bi, gi in zip(b, _exact_vector(self.tree, a, cache))))
+
+    def residual(self, a, b) -> sp.Expr:
+        """Phi(t) - 1/gamma(t), exact; zero when the condition holds."""
+        return _clean(self.elementary_weight(a, b) - sp.Rational(1, self.density))
+
+
+@functools.lru_cache(maxsize=None)
+def order_conditions(order: int) -> tuple[OrderCondition, ...]:
+    """The order conditions of exactly this order, one per rooted tree with `order` nodes."""
+    return tuple(OrderCondition(t, order, _density(t), _symmetry(t)) for t in rooted_trees(order))
+
+
+def condition_counts(max_order: int = 8) -> list[int]:
+    """Number of order conditions of each order 1..max_order (1, 1, 2, 4, 9, 20, 48, 115, ...).
+
+    References
+    ----------
+    OEIS A000081, citing Butcher 1987.
+    """
+    return [len(order_conditions(p)) for p in range(1, max_order + 1)]
+
+
+def _expand(value):
+    return value if isinstance(value, sp.Rational) else sp.expand(value)
+
+
+def _exact_vector(tree: Tree, a, cache: dict) -> tuple:
+    """g(t): g(τ) = 1 and g([t1..tm])_i = prod_k (a g(t_k))_i, exact, memoised in cache."""
+    if tree in cache:
+        return cache[tree]
+    s = len(a)
+    g = [sp.Integer(1)] * s
+    for child in tree:
+        ag = _exact_a_times(child, a, cache)
+        g = [_expand(x * y) for x, y in zip(g, ag)]
+    cache[tree] = tuple(g)
+    return cache[tree]
+
+
+def _exact_a_times(tree: Tree, a, cache: dict) -> tuple:
+    key = ("a", tree)
+    if key not in cache:
+        g = _exact_vector(tree, a, cache)
+        cache[key] = tuple(_expand(sum(aij * gj for aij, gj in zip(row, g))) for row in a)
+    return cache[key]
+
+
+def _numeric_vector(tree: Tree, a, cache: dict) -> list:
+    """g(t) in mpmath at the working precision (same recursion as _exact_vector)."""
+    if tree in cache:
+        return cache[tree]
+    s = len(a)
+    g = [mpmath.mpf(1)] * s
+    for child in tree:
+        key = ("a", child)
+        if key not in cache:
+            gc = _numeric_vector(child, a, cache)
+            cache[key] = [mpmath.fsum(aij * gj for aij, gj in zip(row, gc)) for row in a]
+        g = [x * y for x, y in zip(g, cache[key])]
+    cache[tree] = g
+    return g
+
+
+def _mp(value, digits: int = _DIGITS + 10) -> mpmath.mpf:
+    """value as an mpmath number correct to `digits` digits (set mpmath's precision to match)."""
+    return mpmath.mpf(sp.Float(sp.N(value, digits), digits)._mpf_)
+
+
+def order_of(tableau: Tableau, weights=None, max_order: int = 8, tol: float = 0.0) -> int:
+    """The largest p <= max_order such that every order condition of order <= p holds.
+
+    weights replaces b (pass tableau.b_hat for the order of the embedded solution). With tol = 0
+    each condition must hold exactly; data that are themselves rounded (such as a diagonal kept as
+    a 40-digit rational) satisfy their conditions only to about that rounding, so pass tol > 0 to
+    count a condition as satisfied when |Phi(t) - 1/gamma(t)| <= tol. Returns 0 if even
+    sum(b) = 1 fails.
+
+    Each condition is first evaluated at 50 digits; one that is clearly not zero fails without
+    exact work, one that is numerically zero is confirmed with exact arithmetic.
+
+    References
+    ----------
+    Butcher 1987; HNW I, section II.2, Theorem 2.13 (from memory).
+    """
+    b = tableau.b if weights is None else tuple(weights)
+    if len(b) != tableau.stages:
+        raise MethodError(f"{tableau.id}: weights: must have {tableau.stages} entries")
+    a = tableau.a
+    with mpmath.workdps(_DIGITS):
+        a_num = [[_mp(v) for v in row] for row in a]
+        b_num = [_mp(v) for v in b]
+        tol_num = mpmath.mpf(tol)
+        numeric_cache: dict = {}
+        exact_cache: dict = {}
+        for p in range(1, max_order + 1):
+            for condition in order_conditions(p):
+                g = _numeric_vector(condition.tree, a_num, numeric_cache)
+                residual = mpmath.fsum(bi * gi for bi, gi in zip(b_num, g)) \
+                    - mpmath.mpf(1) / condition.density
+                if tol > 0:
+                    if abs(residual) > tol_num:
+                        return p - 1
+                    continue
+                if abs(residual) > _NUMERIC_ZERO:
+                    return p - 1
+                g_exact = _exact_vector(condition.tree, a, exact_cache)
+                value = sum(bi * gi for bi, gi in zip(b, g_exact)) - sp.Rational(1, condition.density)
+                if not _is_zero(value):
+                    return p - 1
+    return max_order
+
+
+# ---------------------------------------------------------------------------------------------
+# Exact numbers: zero test, sign, simplification
+# ---------------------------------------------------------------------------------------------
+
+_X = sp.Symbol("x")
+
+
+def _is_zero(value) -> bool:
+    """Exact zero test for an algebraic number built from rationals and radicals."""
+    value = sp.sympify(value)
+    if value.is_Rational:
+        return value == 0
+    value = sp.expand(value)
+    if value.is_Rational:
+        return value == 0
+    with mpmath.workdps(_DIGITS + 30):
+        if abs(_mp(value, _DIGITS + 40)) > mpmath.mpf("1e-60"):
+            return False
+    if sp.radsimp(value) == 0 or sp.simplify(value) == 0:
+        return True
+    try:
+        return sp.minimal_polynomial(value, _X) == _X
+    except (NotImplementedError, sp.polys.polyerrors.NotAlgebraic):
+        raise MethodError(f"cannot decide whether {value} is zero; use exact radicals "
+                          "or rationals in the tableau") from None
+
+
+def _clean(value) -> sp.Expr:
+    """An exact value in expanded form, with exact zeros made 0."""
+    value = sp.sympify(value)
+    if value.is_Rational:
+        return value
+    value = sp.radsimp(sp.expand(value))
+    return sp.Integer(0) if _is_zero(value) else value
+
+
+def _sign(value) -> int:
+    """Exact sign (-1, 0, 1) of a real algebraic number."""
+    value = sp.sympify(value)
+    if value.is_Rational:
+        return 1 if value.is_positive else (-1 if value.is_negative else 0)
+    if _is_zero(value):
+        return 0
+    digits = _DIGITS
+    while True:
+        approx = sp.N(value, digits)
+        # A nonzero value whose approximation is tiny needs more digits to read its sign.
+        if abs(approx) > sp.Float(10) ** (10 - digits):
+            return 1 if approx > 0 else -1
+        digits *= 2
+
+
+# ---------------------------------------------------------------------------------------------
+# Stability function
+# ---------------------------------------------------------------------------------------------
+
+def _reverse_charpoly(matrix: sp.Matrix) -> list:
+    """Coefficients (low to high) of det(I - z M), exact."""
+    lam = sp.Dummy("lam")
+    coeffs = matrix.charpoly(lam).all_coeffs()  # det(lam I - M), high to low
+    return [_clean(c) for c in coeffs]
+
+
+def _trim(coeffs: list) -> list:
+    coeffs = list(coeffs)
+    while len(coeffs) > 1 and coeffs[-1] == 0:
+        coeffs.pop()
+    return coeffs
+
+
+def _to_expr(coeffs: list) -> sp.Expr:
+    return sp.Add(*[c * Z ** k for k, c in enumerate(coeffs)])
+
+
+def _coeffs(expr) -> list:
+    """Exact coefficients (low to high) of a polynomial in Z."""
+    expr = sp.expand(expr)
+    degree = sp.degree(expr, Z) if expr.has(Z) else 0
+    return _trim([_clean(expr.coeff(Z, k)) for k in range(degree + 1)])
+
+
+def _reduce(p: list, q: list) -> tuple[list, list]:
+    """Cancel a common factor of P and Q and scale so that Q(0) = 1."""
+    p_expr, q_expr = _to_expr(p), _to_expr(q)
+    numbers = [c for c in p + q if not c.is_Rational]
+    try:
+        p_poly = sp.Poly(p_expr, Z, extension=True if numbers else None)
+        q_poly = sp.Poly(q_expr, Z, extension=True if numbers else None)
+        common = sp.gcd(p_poly, q_poly)
+        if common.degree() > 0:
+            p_expr = sp.quo(p_poly, common).as_expr()
+            q_expr = sp.quo(q_poly, common).as_expr()
+    except (sp.polys.polyerrors.PolynomialError, NotImplementedError):
+        pass  # no common factor found; R is still correct, only not in lowest terms
+    p, q = _coeffs(p_expr), _coeffs(q_expr)
+    scale = q[0]
+    return [_clean(c / scale) for c in p], [_clean(c / scale) for c in q]
+
+
+@functools.lru_cache(maxsize=128)
+def _tableau_polynomials(tableau: Tableau) -> tuple[tuple, tuple]:
+    s = tableau.stages
+    a = sp.Matrix(s, s, lambda i, j: tableau.a[i][j])
+    ones_b = sp.Matrix(s, s, lambda i, j: tableau.b[j])
+    # R = det(I - zA + z 1 b^T) / det(I - zA) (HW IV.3, Proposition 3.2).
+    p = _trim(_reverse_charpoly(a - ones_b))
+    q = _trim(_reverse_charpoly(a))
+    p, q = _reduce(p, q)
+    return tuple(p), tuple(q)
+
+
+def stability_polynomials(tableau: Tableau) -> tuple[sp.Expr, sp.Expr]:
+    """(P, Q), exact polynomials in z with R = P/Q in lowest terms and Q(0) = 1.
+
+    References
+    ----------
+    HW, section IV.3, Proposition 3.2: R(z) = det(I - zA + z 1 b^T) / det(I - zA) (from memory).
+    """
+    p, q = _tableau_polynomials(tableau)
+    return _to_expr(p), _to_expr(q)
+
+
+def stability_function(tableau: Tableau) -> sp.Expr:
+    """R(z) = 1 + z b^T (I - zA)^{-1} 1, the factor of one step on y' = lambda y, z = h lambda.
+
+    References
+    ----------
+    HW, section IV.3, formula (3.3) and Proposition 3.2 (from memory).
+    """
+    p, q = stability_polynomials(tableau)
+    return p / q
+
+
+def _rosenbrock_coefficients(method_id: str) -> tuple[tuple, tuple]:
+    if method_id not in ROSENBROCK_METHODS:
+        raise MethodError(f"--method: unknown Rosenbrock method '{method_id}' "
+                          f"(known: {', '.join(ROSENBROCK_METHODS)})")
+    data = ROSENBROCK_METHODS[method_id]
+    where = f"Rosenbrock method {method_id}"
+    gamma = exact(data["gamma"], where, "gamma")
+    alpha = [[exact(v, where, "alpha") for v in row] for row in data["alpha"]]
+    coupling = [[exact(v, where, "coupling") for v in row] for row in data["coupling"]]
+    b = [exact(v, where, "b") for v in data["b"]]
+    # On y' = lambda y with K_i = h k_i / y: (1 - gamma z) K_i = z (1 + sum alpha_ij K_j) + sum coupling_ij K_j.
+    stage_values = []
+    for i in range(len(b)):
+        rhs = Z * (1 + sum(alpha[i][j] * stage_values[j] for j in range(i))) \
+            + sum(coupling[i][j] * stage_values[j] for j in range(i))
+        stage_values.append(sp.cancel(rhs / (1 - gamma * Z)))
+    r = sp.cancel(sp.together(1 + sum(bi * k for bi, k in zip(b, stage_values))))
+    num, den = sp.fraction(r)
+    return _reduce(_coeffs(num), _coeffs(den))
+
+
+def rosenbrock_stability_function(method_id: str) -> sp.Expr:
+    """R(z) of a built-in Rosenbrock method ('rosenbrock-euler' or 'ros2'), exact.
+
+    Derived by applying the scheme in analysis_data.ROSENBROCK_METHODS to y' = lambda y with
+    J = lambda. Rosenbrock-Euler gives 1/(1 - z); ROS2 gives
+    (1 + (1 - 2 gamma) z + (gamma^2 - 2 gamma + 1/2) z^2) / (1 - gamma z)^2, whose z^2 term vanishes
+    for gamma = 1 + 1/sqrt(2).
+
+    References
+    ----------
+    HW, section IV.7 (from memory); Verwer, Spee, Blom & Hundsdorfer 1999, SIAM J. Sci. Comput. 20(4).
+    """
+    p, q = _rosenbrock_coefficients(method_id)
+    return _to_expr(p) / _to_expr(q)
+
+
+# ---------------------------------------------------------------------------------------------
+# Sign analysis of real polynomials with exact (rational or algebraic) coefficients
+# ---------------------------------------------------------------------------------------------
+
+_T = sp.Symbol("t")
+_S = sp.Symbol("s")
+
+
+def _rational_shadow(coeffs: list) -> sp.Poly:
+    """A polynomial over QQ whose real roots include those of sum coeffs[k] t^k.
+
+    For algebraic coefficients this is the norm: the resultant, in the primitive element s of the
+    coefficient field, of f(t, s) and the minimal polynomial of s.
+    """
+    expr = sp.Add(*[c * _T ** k for k, c in enumerate(coeffs)])
+    if all(c.is_Rational for c in coeffs):
+        return sp.Poly(expr, _T, domain=sp.QQ)
+    poly = sp.Poly(expr, _T, extension=True)
+    field = poly.domain
+
+    def in_s(rationals):  # high-to-low rational coefficients -> polynomial in _S
+        rationals = list(rationals)
+        return sp.Add(*[sp.Rational(int(r.numerator), int(r.denominator)) * _S ** (len(rationals) - 1 - k)
+                        for k, r in enumerate(rationals)])
+
+    minpoly = in_s(field.mod.to_list())
+    terms = poly.rep.to_list()  # high to low in t, each an element of QQ<s>
+    lifted = sp.Add(*[in_s(coeff.to_list()) * _T ** (len(terms) - 1 - k) for k, coeff in enumerate(terms)])
+    norm = sp.resultant(lifted, minpoly, _S)
+    return sp.Poly(norm, _T, domain=sp.QQ)
+
+
+def _evaluate(coeffs: list, point: sp.Rational) -> sp.Expr:
+    return sum(c * point ** k for k, c in enumerate(coeffs))
+
+
+def _first_sign_loss(coeffs: list) -> sp.Rational | None:
+    """Where f(t) = sum coeffs[k] t^k first stops being >= 0 for t > 0, exactly located.
+
+    Returns 0 if f < 0 just right of 0, None if f >= 0 on all of (0, inf), otherwise the root t*
+    (a rational within 1e-40 of it) with f >= 0 on [0, t*] and f < 0 just after it. Roots where f touches
+    zero without changing sign (even multiplicity) do not end the interval.
+    """
+    coeffs = _trim([_clean(c) for c in coeffs])
+    low = next((k for k, c in enumerate(coeffs) if c != 0), None)
+    if low is None:
+        return None  # f is identically zero: |R| = 1 along the whole ray
+    coeffs = coeffs[low:]  # t^low > 0 for t > 0: the sign is that of the rest
+    if _sign(coeffs[0]) < 0:
+        return sp.Integer(0)
+    if len(coeffs) == 1:
+        return None
+    shadow = _rational_shadow(coeffs)
+    intervals = [iv for iv, _ in shadow.intervals(inf=0) if iv[1] > 0]
+    # Sample f between isolating intervals, where it cannot vanish (a root of f is a root of its
+    # shadow), so each sign is exact; the sign after the last root is that of the leading term.
+    intervals = _separated(shadow, intervals)
+    signs = [1]
+    for (_, right), (left, _) in zip(intervals, intervals[1:]):
+        signs.append(_sign(_evaluate(coeffs, (right + left) / 2)))
+    signs.append(_sign(coeffs[-1]))
+    for k, (left, right) in enumerate(intervals):
+        if signs[k + 1] < 0:
+            root_left, root_right = shadow.refine_root(left, right, eps=sp.Rational(1, 10 ** 40))
+            return (sp.Rational(root_left) + sp.Rational(root_right)) / 2
+    return None
+
+
+def _separated(shadow: sp.Poly, intervals: list) -> list:
+    """Refine isolating intervals until neighbours do not touch, so a sample fits between them."""
+    intervals = [(sp.Rational(lo), sp.Rational(hi)) for lo, hi in intervals]
+    eps = sp.Rational(1, 10 ** 6)
+    while any(hi >= lo2 for (_, hi), (lo2, _) in zip(intervals, intervals[1:])):
+        eps /= 1000
+        intervals = [tuple(sp.Rational(v) for v in shadow.refine_root(lo, hi, eps=eps))
+                     if lo != hi else (lo, hi) for lo, hi in intervals]
+    return intervals
+
+
+def _complex_powers(re, im, n: int) -> list:
+    powers = [(sp.Integer(1), sp.Integer(0))]
+    for _ in range(n):
+        r, i = powers[-1]
+        powers.append((_expand(r * re - i * im), _expand(r * im + i * re)))
+    return powers
+
+
+def _ray_polynomial(p: list, q: list, re, im) -> list:
+    """Coefficients in h of |Q(h lambda)|^2 - |P(h lambda)|^2 for lambda = re + i im, exact.
+
+    Nonnegative exactly where |R(h lambda)| <= 1 (or R has a pole with P = 0 there).
+    """
+    n = max(len(p), len(q))
+    p = list(p) + [sp.Integer(0)] * (n - len(p))
+    q = list(q) + [sp.Integer(0)] * (n - len(q))
+    powers = _complex_powers(re, im, n)
+    out = [sp.Integer(0)] * (2 * n - 1)
+    for j in range(n):
+        for k in range(n):
+            weight = q[j] * q[k] - p[j] * p[k]
+            if weight == 0:
+                continue
+            # Re(lambda^j conj(lambda^k)) for real coefficients.
+            cross = powers[j][0] * powers[k][0] + powers[j][1] * powers[k][1]
+            out[j + k] += weight * cross
+    return [_clean(c) for c in out]
+
+
+# ---------------------------------------------------------------------------------------------
+# Stability report
+# ---------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class StabilityReport:
+    """Linear stability of a method, from its stability function R = P/Q.
+
+    r_infinity is lim R(z) for z -> infinity (None if R is unbounded there). real_axis_limit is the
+    negative end x0 of the stable interval [x0, 0] (None if the whole negative axis is stable);
+    imag_axis_limit is y0 >= 0 with |R(iy)| <= 1 on [0, y0] (0 when only the origin, None when the
+    whole imaginary axis is stable).
+
+    References
+    ----------
+    HW, sections IV.2-IV.3 (from memory).
+    """
+
+    numerator: sp.Expr
+    denominator: sp.Expr
+    a_stable: bool
+    l_stable: bool
+    r_infinity: sp.Expr | None
+    real_axis_limit: float | None
+    imag_axis_limit: float | None
+
+    @property
+    def function(self) -> sp.Expr:
+        return self.numerator / self.denominator
+
+    def as_dict(self) -> dict:
+        return dict(stability_function=str(self.function), a_stable=self.a_stable,
+                    l_stable=self.l_stable,
+                    r_infinity=None if self.r_infinity is None else str(self.r_infinity),
+                    real_axis_limit=self.real_axis_limit, imag_axis_limit=self.imag_axis_limit)
+
+
+@dataclass(frozen=True)
+class MethodReport:
+    """What the analysis found about one method; stability fields are forwarded for convenience.
+
+    order is None for the exact (zero-order-hold) propagator, which has no finite order.
+    """
+
+    id: str
+    name: str
+    stages: int
+    order: int | None
+    embedded_order: int | None
+    kind: str
+    stability: StabilityReport
+    source: str
+
+    @property
+    def a_stable(self) -> bool:
+        return self.stability.a_stable
+
+    @property
+    def l_stable(self) -> bool:
+        return self.stability.l_stable
+
+    @property
+    def r_infinity(self):
+        return self.stability.r_infinity
+
+    @property
+    def real_axis_limit(self):
+        return self.stability.real_axis_limit
+
+    @property
+    def imag_axis_limit(self):
+        return self.stability.imag_axis_limit
+
+    def as_dict(self) -> dict:
+        return dict(id=self.id, name=self.name, stages=self.stages, order=self.order,
+                    embedded_order=self.embedded_order, kind=self.kind, source=self.source,
+                    **self.stability.as_dict())
+
+
+def _hurwitz_right(q: list) -> bool:
+    """True if every root of the real polynomial Q lies in Re z > 0 (Routh-Hurwitz on Q(-z)).
+
+    References
+    ----------
+    Hurwitz criterion as stated in HW, section IV.3 (from memory).
+    """
+    n = len(q) - 1
+    if n == 0:
+        return True
+    flipped = [c * (-1) ** k for k, c in enumerate(q)]  # Q(-z), low to high
+    high = list(reversed(flipped))  # a_0 z^n + ... + a_n
+    if _sign(high[0]) < 0:
+        high = [-c for c in high]
+
+    def coeff(k):
+        return high[k] if 0 <= k <= n else sp.Integer(0)
+
+    hurwitz = sp.Matrix(n, n, lambda i, j: coeff(2 * (j + 1) - (i + 1)))
+    return all(_sign(_clean(hurwitz[:m, :m].det())) > 0 for m in range(1, n + 1))
+
+
+def _stability_report(p: list, q: list, explicit: bool) -> StabilityReport:
+    p, q = list(p), list(q)
+    deg_p, deg_q = len(p) - 1, len(q) - 1
+    if deg_p > deg_q:
+        r_infinity = None
+    elif deg_p < deg_q:
+        r_infinity = sp.Integer(0)
+    else:
+        r_infinity = _clean(p[-1] / q[-1])
+    # Real axis: lambda = -1, h = -x.
+    t_real = _first_sign_loss(_ray_polynomial(p, q, sp.Integer(-1), sp.Integer(0)))
+    real_axis_limit = None if t_real is None else -float(t_real)
+    # Imaginary axis: E(y) = |Q(iy)|^2 - |P(iy)|^2 is even in y; work in u = y^2.
+    e = _ray_polynomial(p, q, sp.Integer(0), sp.Integer(1))
+    if any(c != 0 for c in e[1::2]):
+        raise AssertionError("E-polynomial of a real R must be even")  # pragma: no cover
+    u_imag = _first_sign_loss(e[0::2])
+    if u_imag is None:
+        imag_axis_limit = None
+    else:
+        with mpmath.workdps(_DIGITS):
+            imag_axis_limit = float(mpmath.sqrt(mpmath.mpf(u_imag.p) / u_imag.q))
+    # A-stable: no poles in Re z <= 0 and |R(iy)| <= 1 for all y (HW IV.3, Theorem 3.? , E(y) >= 0).
+    a_stable = (not explicit and imag_axis_limit is None and r_infinity is not None
+                and _hurwitz_right(q))
+    l_stable = a_stable and r_infinity == 0
+    return StabilityReport(_to_expr(p), _to_expr(q), a_stable, l_stable, r_infinity,
+                           real_axis_limit, imag_axis_limit)
+
+
+def stability_report(tableau: Tableau) -> StabilityReport:
+    """Linear stability of a Runge-Kutta tableau (see StabilityReport)."""
+    p, q = _tableau_polynomials(tableau)
+    return _stability_report(p, q, tableau.is_explicit)
+
+
+def rosenbrock_stability_report(method_id: str) -> StabilityReport:
+    """Linear stability of a Rosenbrock method from analysis_data.ROSENBROCK_METHODS."""
+    p, q = _rosenbrock_coefficients(method_id)
+    return _stability_report(p, q, explicit=False)
+
+
+def analyse(tableau: Tableau, tol: float = 0.0) -> MethodReport:
+    """Order, embedded order, kind and linear stability of a tableau.
+
+    tol is passed to order_of (0: exact order conditions; see order_of for rounded data).
+
+    References
+    ----------
+    Butcher 1987 (order conditions); HW, sections IV.2-IV.3 (stability) (from memory).
+    """
+    order = order_of(tableau, tol=tol)
+    embedded = order_of(tableau, tableau.b_hat, tol=tol) if tableau.b_hat is not None else None
+    return MethodReport(tableau.id, tableau.name, tableau.stages, order, embedded, tableau.kind,
+                        stability_report(tableau), tableau.source)
+
+
+def analyse_exact() -> MethodReport:
+    """The exact zero-order-hold propagator of a linear model, R(z) = exp(z).
+
+    A-stable (|exp(z)| < 1 for Re z < 0) and L-stable in the sense that R(x) -> 0 as x -> -inf along
+    the real axis; r_infinity reports that limit. No finite order (order None), no stages, no
+    bounded stability limits.
+
+    References
+    ----------
+    Common practice, no source: |exp(z)| = exp(Re z).
+    """
+    stability = StabilityReport(sp.exp(Z), sp.Integer(1), True, True, sp.Integer(0), None, None)
+    return MethodReport("exact", "exact zero-order hold", 0, None, None, "exact", stability,
+                        "matrix exponential; common practice, no source")
+
+
+# ---------------------------------------------------------------------------------------------
+# Numerical use of the stability function
+# ---------------------------------------------------------------------------------------------
+
+def _float_coefficients(tableau_or_r):
+    if isinstance(tableau_or_r, Tableau):
+        p, q = _tableau_polynomials(tableau_or_r)
+    elif isinstance(tableau_or_r, tuple) and len(tableau_or_r) == 2:
+        p, q = _coeffs(tableau_or_r[0]), _coeffs(tableau_or_r[1])
+    else:
+        num, den = sp.fraction(sp.cancel(sp.sympify(tableau_or_r)))
+        if not (sp.Poly(num, Z).is_polynomial if num.has(Z) else True):
+            raise MethodError("stability function must be rational in z")
+        p, q = _coeffs(num), _coeffs(den)
+    return (np.array([float(c) for c in p]), np.array([float(c) for c in q]))
+
+
+def in_stability_region(tableau_or_r, z) -> np.ndarray:
+    """Elementwise |R(z)| <= 1 (with 1e-12 relative slack for boundary points), as a bool array.
+
+    tableau_or_r is a Tableau, a rational sympy expression in Z, a pair (P, Q), or sp.exp(Z).
+
+    References
+    ----------
+    HW, section IV.2, definition of the stability domain (from memory).
+    """
+    z = np.asarray(z, dtype=complex)
+    if isinstance(tableau_or_r, sp.Expr) and tableau_or_r == sp.exp(Z):
+        return z.real <= 0
+    p, q = _float_coefficients(tableau_or_r)
+    num = np.abs(np.polynomial.polynomial.polyval(z, p))
+    den = np.abs(np.polynomial.polynomial.polyval(z, q))
+    return num <= (1 + _REGION_SLACK) * den
+
+
+def max_stable_dt(tableau: Tableau, eigenvalues, margin: float = 1.0) -> float:
+    """The largest h with h*lambda in the stability region for every eigenvalue, times margin.
+
+    eigenvalues: complex values (1/s); the result is in seconds. For each lambda != 0 the ray
+    h*lambda, h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed
+    (a touch without crossing does not count), found exactly as the first sign change of the
+    polynomial |Q(h lambda)|^2 - |P(h lambda)|^2 in h. margin in (0, 1] is a safety factor.
+    Returns math.inf if every ray stays stable, 0.0 if some h*lambda leaves the region at once
+    (for example Re lambda > 0, or an explicit method with lambda on the imaginary axis).
+
+    References
+    ----------
+    HW, section IV.2 (stability domain); common practice, no source (step size from eigenvalues).
+    """
+    if not 0 < margin <= 1:
+        raise ValueError("margin must be in (0, 1]")
+    p, q = _tableau_polynomials(tableau)
+    limit = math.inf
+    seen = set()
+    for lam in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
+        if not np.isfinite(lam):
+            raise ValueError(f"eigenvalue {lam} is not finite")
+        key = (float(lam.real), abs(float(lam.imag)))  # R has real coefficients: conjugates agree
+        if key == (0.0, 0.0) or key in seen:
+            continue
+        seen.add(key)
+        poly = _ray_polynomial(p, q, sp.Rational(key[0]), sp.Rational(key[1]))
+        h = _first_sign_loss(poly)
+        if h is None:
+            continue
+        limit = min(limit, float(h))
+    return limit * margin
