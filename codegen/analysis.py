@@ -638,7 +638,7 @@ def _stability_report(p: list, q: list, explicit: bool) -> StabilityReport:
     else:
         with mpmath.workdps(_DIGITS):
             imag_axis_limit = float(mpmath.sqrt(mpmath.mpf(u_imag.p) / u_imag.q))
-    # A-stable: no poles in Re z <= 0 and |R(iy)| <= 1 for all y (HW IV.3, Theorem 3.? , E(y) >= 0).
+    # A-stable iff no poles in Re z <= 0 and E(y) >= 0 for all y (HW IV.3, E-polynomial; from memory).
     a_stable = (not explicit and imag_axis_limit is None and r_infinity is not None
                 and _hurwitz_right(q))
     l_stable = a_stable and r_infinity == 0
@@ -700,8 +700,8 @@ def _float_coefficients(tableau_or_r):
         p, q = _coeffs(tableau_or_r[0]), _coeffs(tableau_or_r[1])
     else:
         num, den = sp.fraction(sp.cancel(sp.sympify(tableau_or_r)))
-        if not (sp.Poly(num, Z).is_polynomial if num.has(Z) else True):
-            raise MethodError("stability function must be rational in z")
+        if not (num.is_polynomial(Z) and den.is_polynomial(Z)):
+            raise MethodError(f"stability function {tableau_or_r} is not rational in z")
         p, q = _coeffs(num), _coeffs(den)
     return (np.array([float(c) for c in p]), np.array([float(c) for c in q]))
 
