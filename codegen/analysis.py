@@ -380,7 +380,8 @@ def _rosenbrock_coefficients(method_id: str) -> tuple[tuple, tuple]:
     alpha = [[exact(v, where, "alpha") for v in row] for row in data["alpha"]]
     coupling = [[exact(v, where, "coupling") for v in row] for row in data["coupling"]]
     b = [exact(v, where, "b") for v in data["b"]]
-    # On y' = lambda y with K_i = h k_i / y: (1 - gamma z) K_i = z (1 + sum alpha_ij K_j) + sum coupling_ij K_j.
+    # On y' = lambda y, with K_i = h k_i / y:
+    #   (1 - gamma z) K_i = z (1 + sum_j alpha_ij K_j) + sum_j coupling_ij K_j.
     stage_values = []
     for i in range(len(b)):
         rhs = Z * (1 + sum(alpha[i][j] * stage_values[j] for j in range(i))) \
@@ -429,12 +430,14 @@ def _rational_shadow(coeffs: list) -> sp.Poly:
 
     def in_s(rationals):  # high-to-low rational coefficients -> polynomial in _S
         rationals = list(rationals)
-        return sp.Add(*[sp.Rational(int(r.numerator), int(r.denominator)) * _S ** (len(rationals) - 1 - k)
+        top = len(rationals) - 1
+        return sp.Add(*[sp.Rational(int(r.numerator), int(r.denominator)) * _S ** (top - k)
                         for k, r in enumerate(rationals)])
 
     minpoly = in_s(field.mod.to_list())
     terms = poly.rep.to_list()  # high to low in t, each an element of QQ<s>
-    lifted = sp.Add(*[in_s(coeff.to_list()) * _T ** (len(terms) - 1 - k) for k, coeff in enumerate(terms)])
+    lifted = sp.Add(*[in_s(coeff.to_list()) * _T ** (len(terms) - 1 - k)
+                      for k, coeff in enumerate(terms)])
     norm = sp.resultant(lifted, minpoly, _S)
     return sp.Poly(norm, _T, domain=sp.QQ)
 

@@ -17,8 +17,9 @@ from __future__ import annotations
 
 # Alexander's SDIRK3 diagonal: the root near 0.4358665215 of x^3 - 3x^2 + 3/2 x - 1/6. The cubic has
 # three real roots, so its radical form needs complex numbers and the tableau parser takes only sqrt
-# and Rational; it is kept as a 40-digit rational, which satisfies the order-3 conditions to about
-# 1e-40. Use SDIRK3_TOL with analysis.order_of. Closed form, for checking: 1 + sqrt(2)*cos(acos(2*sqrt(2)/3)/3 + 4*pi/3).
+# and Rational; it is kept as a 40-digit rational, with which the order conditions up to order 3
+# hold to about 1e-40 rather than exactly. Use SDIRK3_TOL with analysis.order_of. Trigonometric form,
+# for checking: 1 + sqrt(2)*cos(acos(2*sqrt(2)/3)/3 + 4*pi/3).
 SDIRK3_GAMMA = "(4358665215084589994160194511935568425293/10**40)"
 
 # Tolerance for the order conditions of tableaux whose data are rounded (a residual below it counts as
