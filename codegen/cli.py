@@ -1,0 +1,399 @@
+"""Command line: one click group; exit 1 for a domain error, 2 for usage; diagnostics on stderr."""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+import sys
+from pathlib import Path
+
+import click
+import numpy as np
+
+from . import __version__
+from .errors import BuildError, CheckError, MethodError, TickwrightError
+
+PRECISION_CHOICE = click.Choice(["float", "double"])
+
+
+class Failure(click.exceptions.Exit):
+    """Exit 1 after a one-line diagnostic."""
+
+
+def fail(message: str) -> None:
+    click.echo(f"tickwright: error: {message}", err=True)
+    raise click.exceptions.Exit(1)
+
+
+def guarded(fn):
+    """Turn every TickwrightError into one line on stderr and exit status 1."""
+    import functools
+
+    @functools.wraps(fn)
+    def wrapper(*args, **kwargs):
+        try:
+            return fn(*args, **kwargs)
+        except BuildError as exc:
+            if exc.output and "--verbose" in sys.argv:
+                click.echo(exc.details(), err=True)
+            fail(str(exc))
+        except TickwrightError as exc:
+            fail(str(exc))
+
+    return wrapper
+
+
+def say(message: str) -> None:
+    """Progress on stderr, so stdout stays clean for --json."""
+    click.echo(f"... {message}", err=True)
+
+
+def method_options(fn):
+    fn = click.option("--tableau", "tableau_file", type=click.Path(dir_okay=False, path_type=Path),
+                      help="A TOML file with your own tableau (name, a, b, c[, order, b_hat]).")(fn)
+    fn = click.option("--method", "method_id", metavar="NAME",
+                      help="A built-in method id (see 'tickwright methods').")(fn)
+    return fn
+
+
+def step_options(fn):
+    fn = click.option("--precision", type=PRECISION_CHOICE, default="float", show_default=True,
+                      help="Working precision of the generated C.")(fn)
+    fn = click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
+                      help="Method steps per tick (h = dt / substeps).")(fn)
+    fn = click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+                      help="Tick period in seconds.")(fn)
+    return method_options(fn)
+
+
+def resolve_method(method_id: str | None, tableau_file: Path | None):
+    from .method import builtin, load_tableau
+
+    if method_id and tableau_file:
+        raise click.UsageError("give either --method or --tableau, not both")
+    if tableau_file:
+        tableau = load_tableau(tableau_file)
+        return with_order(tableau)
+    if not method_id:
+        raise click.UsageError("missing --method NAME (or --tableau FILE); see 'tickwright methods'")
+    return builtin(method_id)
+
+
+def with_order(tableau):
+    """Fill in the order of a user tableau from the order conditions, or check the stated one."""
+    import dataclasses
+
+    try:
+        from .analysis import order_of
+    except ImportError:  # pragma: no cover - analysis is part of the package
+        return tableau
+    found = order_of(tableau)
+    if tableau.order is not None and tableau.order != found:
+        raise MethodError(f"{tableau.source.removeprefix('user tableau ')}: order: states "
+                          f"{tableau.order} but the order conditions give {found}; fix the "
+                          "coefficients or the stated order")
+    return dataclasses.replace(tableau, order=found)
+
+
+def load(model_path: Path):
+    from .model import load_model
+
+    return load_model(model_path)
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="tickwright")
+def main():
+    """Turn an ODE model and a Runge-Kutta method into checked, dependency-free C for firmware.
+
+    Validate the generated code on the real hardware; it is not qualified for safety functions
+    without qualified review.
+    """
+
+
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@step_options
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), required=True,
+              help="Folder to write <name>.h and <name>.c into.")
+@click.option("--force", is_flag=True, help="Replace files even if tickwright did not write them.")
+@guarded
+def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force):
+    """Write the C files for MODEL: <name>.h and <name>.c."""
+    from .pipeline import generate
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file)
+    csource = generate(model, method, dt, substeps, precision)
+    for path in csource.write(out_dir, force=force):
+        click.echo(str(path))
+
+
+def _print_check(report, model, method, dt, substeps) -> None:
+    click.echo(f"{model.name}: {method.name} ({method.id}), dt = {dt:g} s, {substeps} substep(s)")
+    click.echo(f"  {'strict compile':<20} ok    {report.strict_compile}")
+    for c in report.cross_checks:
+        verdict = "ok" if c.passed else "FAIL"
+        click.echo(f"  {'cross-check ' + c.precision:<20} {verdict:<5} max |C - reference| = "
+                   f"{c.max_difference:.3g} (rounding bound {c.tolerance:.3g}) over {c.ticks} "
+                   f"ticks; |C - solve_ivp| = {c.error_vs_high_accuracy:.3g}")
+        if c.completed < c.ticks:
+            click.echo(f"  {'':<20}       stopped after {c.completed} ticks: a state became "
+                       "non-finite (the step is unstable or the inputs are out of range)")
+    o = report.order
+    if o is not None:
+        verdict = "ok" if o.passed else "FAIL"
+        if o.measured is None:
+            click.echo(f"  {'order':<20} {verdict:<5} {o.note}")
+        else:
+            click.echo(f"  {'order':<20} {verdict:<5} measured {o.measured:.2f} (expected "
+                       f"{o.expected}) from {o.steps[0]}..{o.steps[-1]} steps over "
+                       f"{o.horizon:.3g} s")
+    for line in report.extras.get("lines", []):
+        click.echo("  " + line)
+    click.echo("verdict: " + ("PASS" if report.passed else "FAIL"))
+
+
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@method_options
+@click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Tick period in seconds.")
+@click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Method steps per tick.")
+@click.option("--precision", type=click.Choice(["float", "double", "both"]), default="both",
+              show_default=True, help="Which builds to cross-check.")
+@click.option("--ticks", type=click.IntRange(min=1), default=200, show_default=True,
+              help="Length of the cross-check run.")
+@click.option("--no-order", is_flag=True, help="Skip the order study.")
+@click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@guarded
+def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order, as_json):
+    """Build MODEL's C, cross-check it against the reference and measure its order.
+
+    Exit status 1 when any check fails.
+    """
+    from .verify import check as run_check
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file)
+    precisions = ("float", "double") if precision == "both" else (precision,)
+    report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
+                       progress=say)
+    if as_json:
+        click.echo(json.dumps(report.to_dict(), indent=2, default=_json_default))
+    else:
+        _print_check(report, model, method, dt, substeps)
+    if not report.passed:
+        raise click.exceptions.Exit(1)
+
+
+def _json_default(value):
+    if isinstance(value, (np.floating, np.integer)):
+        return value.item()
+    if isinstance(value, float) and not math.isfinite(value):
+        return None
+    return str(value)
+
+
+def read_input_log(path: Path, model, ticks: int | None) -> np.ndarray:
+    """A CSV with header t,<input names>, one row per tick -> (n, nu) array of inputs."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (FileNotFoundError, IsADirectoryError, UnicodeDecodeError) as exc:
+        raise CheckError(f"{path}: cannot read the input log: {exc}") from None
+    rows = list(csv.reader(io.StringIO(text)))
+    rows = [r for r in rows if r and any(cell.strip() for cell in r)]
+    if not rows:
+        raise CheckError(f"{path}: empty; expected a header 't,<inputs>' and one row per tick")
+    header = [h.strip() for h in rows[0]]
+    names = [u.name for u in model.inputs]
+    if not header or header[0] != model.time:
+        raise CheckError(f"{path}: header: first column must be '{model.time}', got "
+                         f"'{header[0] if header else ''}'")
+    if sorted(header[1:]) != sorted(names) or len(set(header)) != len(header):
+        raise CheckError(f"{path}: header: expected the columns {model.time},{','.join(names)} "
+                         f"(any order after '{model.time}'), got {','.join(header)}")
+    order = [header.index(n) for n in names]
+    data = np.zeros((len(rows) - 1, len(names)))
+    for r, row in enumerate(rows[1:], start=2):
+        if len(row) != len(header):
+            raise CheckError(f"{path}: line {r}: {len(row)} values, expected {len(header)}")
+        for j, col in enumerate(order):
+            try:
+                v = float(row[col])
+            except ValueError:
+                raise CheckError(f"{path}: line {r}: column '{header[col]}': '{row[col]}' is not "
+                                 "a number") from None
+            if not math.isfinite(v):
+                raise CheckError(f"{path}: line {r}: column '{header[col]}': must be finite")
+            data[r - 2, j] = v
+    if ticks is not None:
+        data = data[:ticks]
+    return data
+
+
+def format_value(v: float) -> str:
+    """Round-trip text of a float (float32 values are exact in float64, so repr keeps them)."""
+    return repr(float(v))
+
+
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@step_options
+@click.option("--inputs", "inputs_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV with header t,<inputs>, one row per tick.")
+@click.option("--steps", type=click.IntRange(min=1), default=None,
+              help="Number of ticks (default: the rows of --inputs, else 100).")
+@click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
+              help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
+@guarded
+def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
+           out_path):
+    """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV."""
+    from .build import build
+    from .pipeline import generate
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file)
+    if inputs_path:
+        inputs = read_input_log(inputs_path, model, steps)
+    else:
+        inputs = np.array([[u.default for u in model.inputs]] * (steps or 100)).reshape(
+            steps or 100, len(model.inputs))
+    csource = generate(model, method, dt, substeps, precision)
+    built = build(csource, model)
+    ffi, lib = built.ffi, built.lib
+    ctx = ffi.new(f"{model.name}_ctx_t *")
+    out = ffi.new(f"{model.name}_outputs_t *") if model.outputs else None
+    getattr(lib, f"{model.name}_reset")(ctx)
+    advance = getattr(lib, f"{model.name}_advance")
+    outputs_fn = getattr(lib, f"{model.name}_outputs") if model.outputs else None
+    status_names = {0: "OK", 1: "NONFINITE", 2: "NO_CONVERGENCE", 3: "SINGULAR"}
+
+    def row():
+        if outputs_fn:
+            outputs_fn(ctx, out)
+        values = [getattr(ctx, model.time)] + [getattr(ctx, s.name) for s in model.states]
+        values += [getattr(out, o.name) for o in model.outputs]
+        return [format_value(v) for v in values]
+
+    lines = [[model.time] + [s.name for s in model.states] + [o.name for o in model.outputs]]
+    if inputs_path is None and len(inputs):
+        for j, u in enumerate(model.inputs):
+            setattr(ctx, u.name, float(inputs[0, j]))
+    lines.append(row())
+    failure = None
+    with click.progressbar(range(len(inputs)), label="replay", file=sys.stderr,
+                           show_pos=True) as ticks:
+        for k in ticks:
+            for j, u in enumerate(model.inputs):
+                setattr(ctx, u.name, float(inputs[k, j]))
+            status = int(advance(ctx))
+            if status != 0:
+                failure = (k + 1, status)
+                break
+            lines.append(row())
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerows(lines)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out_path.with_name(out_path.name + ".tmp")
+    tmp.write_text(buf.getvalue(), encoding="utf-8")
+    tmp.replace(out_path)
+    if failure:
+        k, status = failure
+        fail(f"{inputs_path or model_path}: tick {k} (t = {k * dt:g} s): status "
+             f"{status_names.get(status, status)}; {out_path} holds the {k} rows before it")
+    click.echo(f"{out_path}: {len(lines) - 1} rows ({len(inputs)} ticks)")
+
+
+def method_rows(tableau_file: Path | None):
+    from .method import builtin, builtin_ids
+
+    tableaux = [with_order(__import__("codegen.method", fromlist=["load_tableau"]).load_tableau(
+        tableau_file))] if tableau_file else [builtin(i) for i in builtin_ids()]
+    rows = []
+    for t in tableaux:
+        row = {"id": t.id, "name": t.name, "stages": t.stages, "order": t.order,
+               "embedded_order": t.embedded_order, "kind": t.kind,
+               "explicit": t.is_explicit, "source": t.source}
+        try:
+            from .analysis import analyse
+
+            report = analyse(t)
+            row.update({k: report_value(report, k) for k in
+                        ("a_stable", "l_stable", "real_axis_limit", "imag_axis_limit")})
+        except ImportError:  # pragma: no cover
+            pass
+        rows.append(row)
+    return rows
+
+
+def report_value(report, key):
+    v = getattr(report, key, None)
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    return v
+
+
+@main.command()
+@click.option("--tableau", "tableau_file", type=click.Path(dir_okay=False, path_type=Path),
+              help="Analyse this tableau file instead of listing the built-in methods.")
+@click.option("--json", "as_json", is_flag=True, help="Print the table as JSON.")
+@guarded
+def methods(tableau_file, as_json):
+    """List the built-in methods (or analyse a tableau file): stages, order, kind, source."""
+    rows = method_rows(tableau_file)
+    if as_json:
+        click.echo(json.dumps(rows, indent=2, default=_json_default))
+        return
+    click.echo(f"{'id':<18} {'stages':>6} {'order':>6}  {'kind':<20} name / source")
+    for r in rows:
+        order = f"{r['order']}" + (f"({r['embedded_order']})" if r["embedded_order"] else "")
+        click.echo(f"{r['id']:<18} {r['stages']:>6} {order:>6}  {r['kind']:<20} {r['name']}; "
+                   f"{r['source']}")
+
+
+DEMO_MODEL = "axis.toml"
+DEMO_METHOD = "rk4"
+DEMO_DT = 2e-4
+
+
+@main.command()
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
+              default=Path("tickwright-demo"), show_default=True,
+              help="Folder to write the demo's C files into.")
+@guarded
+def demo(out_dir):
+    """Run the whole job on the bundled demo model: emit, build, cross-check, report."""
+    from .cost import step_cost
+    from .discretize import discretize
+    from .method import builtin
+    from .model import load_model
+    from .pipeline import generate
+    from .resources import examples_dir
+    from .simplify import simplify
+    from .verify import check as run_check
+
+    model_path = examples_dir() / DEMO_MODEL
+    model = load_model(model_path)
+    method = builtin(DEMO_METHOD)
+    say(f"model {model.name} from {model_path.name}: {model.nx} states, "
+        f"{len(model.inputs)} input(s)")
+    csource = generate(model, method, DEMO_DT, 1, "float")
+    written = csource.write(out_dir)
+    cost = step_cost(simplify(discretize(model, method, DEMO_DT)))
+    report = run_check(model, method, DEMO_DT, 1, ("float", "double"), 500, progress=say)
+    click.echo("files written:")
+    for path in written:
+        click.echo(f"  {path}")
+    click.echo(f"method and tick: {method.name} ({method.id}), dt = {DEMO_DT:g} s "
+               f"({1 / DEMO_DT:g} Hz), float")
+    c = cost.to_dict()
+    click.echo(f"cost per tick: {c['total']} floating-point operations ({c['add']} add/sub, "
+               f"{c['mul']} mul, {c['div']} div, {c['call']} math calls)")
+    _print_check(report, model, method, DEMO_DT, 1)
+    if not report.passed:
+        raise click.exceptions.Exit(1)

@@ -1,0 +1,138 @@
+"""The independent Python reference: the same method, run with numpy straight from the model.
+
+It shares nothing with the generated code path: f comes from sympy's lambdify of the model's own
+expressions (no CSE, no C printer), and the step is a generic tableau loop in float64.
+
+References
+----------
+HNW I, section II.1 (explicit Runge-Kutta step).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import sympy as sp
+
+from .model import Model
+
+
+@dataclass(frozen=True)
+class Trajectory:
+    """ts (n+1), xs (n+1, nx) and how many ticks completed before a non-finite value."""
+
+    ts: np.ndarray
+    xs: np.ndarray
+    completed: int
+
+
+def rate_function(model: Model, parameters: dict[str, float] | None = None):
+    """f(t, x, u) -> dx/dt as a numpy function of float64 arrays (parameters fixed)."""
+    values = model.parameter_values()
+    values.update(parameters or {})
+    psyms = [p.symbol for p in model.parameters]
+    args = [model.t, list(model.x), list(model.u), psyms]
+    fn = sp.lambdify(args, list(model.f), modules="numpy")
+    pvals = [values[p.name] for p in model.parameters]
+
+    def f(t, x, u):
+        with np.errstate(all="ignore"):
+            return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64).reshape(-1)
+
+    return f
+
+
+def output_function(model: Model, parameters: dict[str, float] | None = None):
+    """g(t, x, u) -> outputs, the same way as rate_function."""
+    values = model.parameter_values()
+    values.update(parameters or {})
+    psyms = [p.symbol for p in model.parameters]
+    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms],
+                     [o.resolved for o in model.outputs], modules="numpy")
+    pvals = [values[p.name] for p in model.parameters]
+
+    def g(t, x, u):
+        with np.errstate(all="ignore"):
+            return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64).reshape(-1)
+
+    return g
+
+
+def explicit_step(f, a, b, c, t, x, u, h):
+    """One explicit Runge-Kutta step with a generic tableau loop."""
+    s = len(b)
+    k = np.zeros((s, len(x)))
+    for i in range(s):
+        y = x + h * (a[i, :i] @ k[:i]) if i else x
+        k[i] = f(t + c[i] * h, y, u)
+    return x + h * (b @ k)
+
+
+def run(model: Model, method, dt: float, substeps: int, inputs: np.ndarray,
+        x0: np.ndarray | None = None, parameters: dict[str, float] | None = None,
+        stepper=None) -> Trajectory:
+    """Run len(inputs) ticks, inputs held constant over each tick (zero-order hold).
+
+    inputs: (n, nu) array; returns the trajectory at every tick boundary.
+    """
+    f = rate_function(model, parameters)
+    if stepper is None:
+        a, b, c = method.floats()
+
+        def stepper(t, x, u, h):
+            return explicit_step(f, a, b, c, t, x, u, h)
+
+    n = len(inputs)
+    x = np.array([s.initial for s in model.states] if x0 is None else x0, dtype=np.float64)
+    h = dt / substeps
+    ts = np.zeros(n + 1)
+    xs = np.full((n + 1, model.nx), np.nan)
+    xs[0] = x
+    with np.errstate(all="ignore"):
+        for k in range(n):
+            t0 = ts[k]
+            for m in range(substeps):
+                x = stepper(t0 + m * h, x, inputs[k], h)
+            if not np.all(np.isfinite(x)):
+                return Trajectory(ts=ts, xs=xs, completed=k)
+            ts[k + 1] = t0 + dt
+            xs[k + 1] = x
+    return Trajectory(ts=ts, xs=xs, completed=n)
+
+
+def high_accuracy(model: Model, dt: float, inputs: np.ndarray, x0=None, parameters=None,
+                  rtol: float = 1e-12) -> Trajectory:
+    """scipy solve_ivp (DOP853, tight tolerance), restarted at every tick for the held inputs."""
+    from scipy.integrate import solve_ivp
+
+    f = rate_function(model, parameters)
+    n = len(inputs)
+    x = np.array([s.initial for s in model.states] if x0 is None else x0, dtype=np.float64)
+    ts = np.arange(n + 1) * dt
+    xs = np.full((n + 1, model.nx), np.nan)
+    xs[0] = x
+    scale = np.maximum(np.abs(x), 1.0)
+    for k in range(n):
+        sol = solve_ivp(lambda t, y, u=inputs[k]: f(t, y, u), (ts[k], ts[k + 1]), x,
+                        method="DOP853", rtol=rtol, atol=rtol * scale)
+        if not sol.success or not np.all(np.isfinite(sol.y[:, -1])):
+            return Trajectory(ts=ts, xs=xs, completed=k)
+        x = sol.y[:, -1]
+        xs[k + 1] = x
+    return Trajectory(ts=ts, xs=xs, completed=n)
+
+
+def jacobian_function(model: Model, parameters: dict[str, float] | None = None):
+    """df/dx(t, x, u) as a numpy function, differentiated symbolically from the model."""
+    values = model.parameter_values()
+    values.update(parameters or {})
+    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
+    psyms = [p.symbol for p in model.parameters]
+    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy")
+    pvals = [values[p.name] for p in model.parameters]
+
+    def jac(t, x, u):
+        return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64)
+
+    return jac

@@ -1,0 +1,280 @@
+"""Stage 7: verification of a built module against the reference and outside solutions.
+
+Three checks, each with its own verdict:
+1. cross-check: the C build and the independent Python reference of the same method agree to within
+   a rounding bound;
+2. accuracy: the C trajectory against scipy's solve_ivp at tight tolerance (reported);
+3. order: the empirical order of the C build (double) on the model, halving the step, matches the
+   method's order to within ORDER_TOLERANCE.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from . import reference
+from .build import build, strict_compile
+from .method import Tableau
+from .model import Model
+from .pipeline import generate
+from .printer import FLOAT
+
+# Measured order must be within this of the method's order (the acceptance bound of the project).
+ORDER_TOLERANCE = 0.15
+# Unit roundoff of each precision.
+EPS = {"float": 2.0 ** -24, "double": 2.0 ** -53}
+# Rounding units allowed per stage and step: each stage adds a handful of roundings of |x|-sized
+# values (the stage sum, the rate evaluation, the update): a few units per stage and step.
+ULPS_PER_STAGE = 4
+# Order study: errors outside [floor, ceiling] x scale are not in the asymptotic regime.
+ORDER_ERROR_CEILING = 1e-2
+ORDER_ERROR_FLOOR = {"double": 1e-13}
+ORDER_MAX_LEVELS = 14
+
+
+@dataclass(frozen=True)
+class CrossCheck:
+    """C build vs the Python reference of the same method over the same ticks."""
+
+    precision: str
+    ticks: int
+    completed: int
+    max_difference: float
+    tolerance: float
+    error_vs_high_accuracy: float
+    passed: bool
+
+
+@dataclass(frozen=True)
+class OrderStudy:
+    """Empirical convergence order: errors at T for n = n0, 2 n0, ... steps."""
+
+    expected: int | None
+    horizon: float
+    steps: tuple[int, ...]
+    errors_c: tuple[float, ...]
+    errors_reference: tuple[float, ...]
+    measured: float | None
+    passed: bool
+    note: str = ""
+
+
+@dataclass(frozen=True)
+class CheckReport:
+    method: str
+    model: str
+    dt: float
+    substeps: int
+    strict_compile: str
+    cross_checks: tuple[CrossCheck, ...]
+    order: OrderStudy | None
+    passed: bool
+    extras: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        d = asdict(self)
+        d["order"] = asdict(self.order) if self.order else None
+        return d
+
+
+def test_inputs(model: Model, ticks: int) -> np.ndarray:
+    """A deterministic excitation: each ranged input sweeps its range; others keep their default.
+
+    Shape (ticks, nu). The frequencies differ per input so inputs are not collinear.
+    """
+    u = np.zeros((ticks, len(model.inputs)))
+    k = np.arange(ticks)
+    for j, inp in enumerate(model.inputs):
+        if inp.range:
+            lo, hi = inp.range
+            u[:, j] = lo + (hi - lo) * (0.5 + 0.4 * np.sin(2 * np.pi * (j + 1) * k / max(ticks, 1)))
+        else:
+            u[:, j] = inp.default
+    return u
+
+
+# Where in its range each input sits during the order study: off-centre, so that a symmetric range
+# (a voltage of -12..12 V) still drives the model away from rest.
+ORDER_INPUT_POSITION = 0.75
+
+
+def constant_inputs(model: Model) -> np.ndarray:
+    """Constant inputs for the order study: 3/4 up each range, or the default."""
+    return np.array([i.range[0] + ORDER_INPUT_POSITION * (i.range[1] - i.range[0]) if i.range
+                     else i.default for i in model.inputs], dtype=np.float64)
+
+
+def run_c(built, model: Model, inputs: np.ndarray, x0=None) -> reference.Trajectory:
+    """Run the compiled step over the inputs with the test-only C loop."""
+    ffi, lib = built.ffi, built.lib
+    dtype = np.float32 if built.csource.precision == FLOAT else np.float64
+    real_t = f"{model.name}_real_t"
+    n = len(inputs)
+    u = np.ascontiguousarray(inputs, dtype=dtype).reshape(-1)
+    xs = np.zeros((n + 1) * model.nx, dtype=dtype)
+    ts = np.zeros(n + 1, dtype=dtype)
+    ctx = ffi.new(f"{model.name}_ctx_t *")
+    getattr(lib, f"{model.name}_reset")(ctx)
+    if x0 is not None:
+        for s, v in zip(model.states, x0):
+            setattr(ctx, s.name, float(v))
+    status = ffi.new("int *")
+    done = lib.tw_run(ctx, n, ffi.from_buffer(f"{real_t}[]", u) if u.size else ffi.NULL,
+                      ffi.from_buffer(f"{real_t}[]", xs), ffi.from_buffer(f"{real_t}[]", ts),
+                      status)
+    xs = xs.reshape(n + 1, model.nx).astype(np.float64)
+    xs[done + 1:] = np.nan
+    return reference.Trajectory(ts=ts.astype(np.float64), xs=xs, completed=int(done))
+
+
+def as_precision(values, precision: str):
+    """Round values to the build's precision, so the reference starts from the same numbers."""
+    arr = np.asarray(values, dtype=np.float64)
+    return arr.astype(np.float32).astype(np.float64) if precision == FLOAT else arr
+
+
+def rounding_tolerance(model: Model, method: Tableau, precision: str, ticks: int, substeps: int,
+                       scale: float, growth: float) -> float:
+    """Bound on |C - reference| from rounding alone.
+
+    Each of the ticks*substeps steps adds at most ULPS_PER_STAGE*(stages + 1) rounding units of
+    the state's scale; errors are carried forward with at most the growth factor of the model
+    over the run (exp of the largest positive real part of the Jacobian's eigenvalues times T).
+    """
+    steps = ticks * substeps
+    return ULPS_PER_STAGE * (method.stages + 1) * EPS[precision] * steps * scale * growth
+
+
+def growth_factor(model: Model, horizon: float, inputs: np.ndarray) -> float:
+    x0 = np.array([s.initial for s in model.states])
+    jac = reference.jacobian_function(model)
+    u = inputs[0] if len(inputs) else np.zeros(0)
+    with np.errstate(all="ignore"):
+        eig = np.linalg.eigvals(jac(0.0, x0, u))
+    rate = max(0.0, float(np.max(eig.real))) if np.all(np.isfinite(eig)) else 0.0
+    return float(np.exp(min(rate * horizon, 50.0)))
+
+
+def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precision: str,
+                ticks: int, inputs: np.ndarray | None = None) -> CrossCheck:
+    """Build the C and compare it tick by tick with the independent reference."""
+    csource = generate(model, method, dt, substeps, precision)
+    built = build(csource, model)
+    u = test_inputs(model, ticks) if inputs is None else inputs
+    u = as_precision(u, precision)
+    c_run = run_c(built, model, u)
+    params = {p.name: float(as_precision(p.value, precision)) for p in model.parameters}
+    x0 = as_precision([s.initial for s in model.states], precision)
+    ref = reference.run(model, method, dt, substeps, u, x0=x0, parameters=params)
+    exact = reference.high_accuracy(model, dt, u, x0=x0, parameters=params)
+    n = min(c_run.completed, ref.completed)
+    diff = np.abs(c_run.xs[: n + 1] - ref.xs[: n + 1])
+    scale = float(np.nanmax(np.abs(ref.xs[: n + 1]))) if n >= 0 else 1.0
+    scale = max(scale, 1e-300)
+    tol = rounding_tolerance(model, method, precision, ticks, substeps, scale,
+                             growth_factor(model, ticks * dt, u))
+    max_diff = float(np.max(diff)) if diff.size else 0.0
+    m = min(c_run.completed, exact.completed)
+    acc = float(np.max(np.abs(c_run.xs[: m + 1] - exact.xs[: m + 1]))) if m >= 0 else float("nan")
+    same_end = c_run.completed == ref.completed
+    passed = bool(same_end and np.isfinite(max_diff) and max_diff <= tol)
+    return CrossCheck(precision=precision, ticks=ticks, completed=c_run.completed,
+                      max_difference=max_diff, tolerance=tol, error_vs_high_accuracy=acc,
+                      passed=passed)
+
+
+def order_horizon(model: Model, u: np.ndarray) -> float:
+    """A horizon of two of the model's fastest time constants at the initial point."""
+    x0 = np.array([s.initial for s in model.states])
+    jac = reference.jacobian_function(model)
+    with np.errstate(all="ignore"):
+        eig = np.linalg.eigvals(jac(0.0, x0, u))
+    fastest = float(np.max(np.abs(eig))) if np.all(np.isfinite(eig)) else 0.0
+    return 2.0 / fastest if fastest > 0 else 1.0
+
+
+def _window(errors: list[float], scale: float, floor: float) -> list[int]:
+    """Indices of levels whose error is in the asymptotic, above-rounding range."""
+    return [i for i, e in enumerate(errors)
+            if np.isfinite(e) and floor * scale < e < ORDER_ERROR_CEILING * scale]
+
+
+def fitted_order(steps, errors) -> float:
+    """Least-squares slope of log(error) against log(1/n)."""
+    return float(-np.polyfit(np.log(np.asarray(steps, float)), np.log(np.asarray(errors)), 1)[0])
+
+
+def measure_order(model: Model, method: Tableau, expected: int | None = None,
+                  progress=None) -> OrderStudy:
+    """Empirical order of the C build (double) by halving the step on the model.
+
+    The reference picks the levels in the asymptotic regime, then the C is built and run at
+    those levels and its own errors against solve_ivp give the measured order.
+    """
+    expected = expected or method.order
+    u = constant_inputs(model)
+    horizon = order_horizon(model, u)
+    exact = reference.high_accuracy(model, horizon, u[None, :], rtol=1e-13).xs[-1]
+    scale = max(float(np.max(np.abs(exact))), 1e-300)
+    floor = ORDER_ERROR_FLOOR["double"]
+    steps, ref_errors = [], []
+    for level in range(1, ORDER_MAX_LEVELS + 1):
+        n = 2 ** level
+        run = reference.run(model, method, horizon / n, 1, np.repeat(u[None, :], n, axis=0))
+        err = float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n else float("inf")
+        steps.append(n)
+        ref_errors.append(err)
+        if np.isfinite(err) and err < floor * scale:
+            break
+    idx = _window(ref_errors, scale, floor)
+    if len(idx) < 3:
+        if all(e <= floor * scale for e in ref_errors if np.isfinite(e)) and ref_errors[0] < floor * scale:
+            return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, True,
+                              "the method is exact on this model at every step size: no order "
+                              "to measure")
+        return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, False,
+                          "fewer than three step sizes in the asymptotic range; the model may be "
+                          "non-smooth (Piecewise, abs, min/max) or badly scaled")
+    idx = idx[-3:]
+    chosen = [steps[i] for i in idx]
+    c_errors = []
+    for n in chosen:
+        if progress:
+            progress(f"order study: C build with {n} steps over {horizon:.3g} s")
+        built = build(generate(model, method, horizon / n, 1, "double"), model)
+        run = run_c(built, model, np.repeat(u[None, :], n, axis=0))
+        c_errors.append(float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n
+                        else float("inf"))
+    if not all(np.isfinite(c_errors)) or min(c_errors) <= 0:
+        return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
+                          tuple(ref_errors[i] for i in idx), None, False,
+                          "the C build did not finish the order study runs")
+    measured = fitted_order(chosen, c_errors)
+    passed = expected is None or abs(measured - expected) <= ORDER_TOLERANCE
+    return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
+                      tuple(ref_errors[i] for i in idx), measured, bool(passed))
+
+
+def check(model: Model, method: Tableau, dt: float, substeps: int = 1,
+          precisions=("float", "double"), ticks: int = 200, inputs=None, order: bool = True,
+          progress=None) -> CheckReport:
+    """Strict compile, cross-check in each precision, and the order study."""
+    say = progress or (lambda msg: None)
+    say("strict compile")
+    command = ""
+    for precision in precisions:
+        command = strict_compile(generate(model, method, dt, substeps, precision))
+    crosses = []
+    for precision in precisions:
+        say(f"cross-check ({precision}): build and run {ticks} ticks")
+        crosses.append(cross_check(model, method, dt, substeps, precision, ticks, inputs))
+    study = None
+    if order:
+        say("order study")
+        study = measure_order(model, method, progress=say)
+    passed = all(c.passed for c in crosses) and (study is None or study.passed)
+    return CheckReport(method=method.id, model=model.name, dt=float(dt), substeps=substeps,
+                       strict_compile=command, cross_checks=tuple(crosses), order=study,
+                       passed=bool(passed))
