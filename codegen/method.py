@@ -42,11 +42,11 @@ class Tableau:
     b_hat: tuple[sp.Expr, ...] | None = None
     embedded_order: int | None = None
     source: str = ""
-    stiffly_accurate: bool = field(default=False, compare=False)
+    origin: str = field(default="", compare=False)  # file or table it came from, for diagnostics
 
     def __post_init__(self) -> None:
         s = len(self.b)
-        where = self.id or self.name
+        where = self.origin or self.id or self.name
         if s == 0:
             raise MethodError(located(where, "b", "a tableau needs at least one stage"))
         if len(self.a) != s or any(len(row) != s for row in self.a):
@@ -181,7 +181,7 @@ def tableau_from_data(data: dict, where: str, method_id: str = "") -> Tableau:
             raise MethodError(located(where, key, "must be a whole number"))
     return Tableau(id=method_id or data["name"], name=data["name"], a=a, b=b, c=c, order=order,
                    b_hat=b_hat, embedded_order=data.get("embedded_order"),
-                   source=data.get("source", "user tableau " + where))
+                   source=data.get("source", "user tableau " + where), origin=where)
 
 
 def load_tableau(path: str | Path) -> Tableau:

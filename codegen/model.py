@@ -393,6 +393,9 @@ class _Translator:
 
     def visit_Call(self, node):
         if not isinstance(node.func, ast.Name):
+            if type(node.func) in _FORBIDDEN:
+                self.fail(f"{_FORBIDDEN[type(node.func)]} is not allowed; expressions are plain "
+                          "math")
             self.fail("only calls of whitelisted math functions are allowed")
         name = node.func.id
         if name not in FUNCTIONS:
@@ -502,6 +505,8 @@ def model_from_data(data: dict, where: str) -> Model:
         raise ModelError(located(where, "time", "must be a string naming the time symbol"))
     check_name(time, where, "time")
     states_t = _table(data, "states", where, required=True)
+    if not states_t:
+        raise ModelError(located(where, "states", "a model needs at least one state"))
     inputs_t = _table(data, "inputs", where)
     params_t = _table(data, "parameters", where)
     outputs_t = _table(data, "outputs", where)

@@ -1,0 +1,114 @@
+"""Tableaux as data: invariants of the built-in set, exact entries, user tableau files."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import sympy as sp
+
+from codegen.errors import MethodError
+from codegen.method import BUILTIN_TABLEAUX, EXPLICIT, builtin, builtin_ids, exact, load_tableau
+
+EXPLICIT_IDS = ["euler", "midpoint", "heun", "ralston2", "kutta3", "ssprk3", "rk4", "rk4-38",
+                "bs3", "dp5"]
+
+
+def test_the_explicit_ids_are_exactly_the_published_list():
+    assert [i for i in builtin_ids() if builtin(i).kind == EXPLICIT] == EXPLICIT_IDS
+
+
+@pytest.mark.parametrize("method_id", builtin_ids())
+def test_row_sums_equal_c_and_weights_sum_to_one(method_id):
+    t = builtin(method_id)
+    for row, c in zip(t.a, t.c):
+        assert sp.simplify(sum(row) - c) == 0
+    assert sp.simplify(sum(t.b) - 1) == 0
+    assert t.source, "every built-in method names its published source"
+
+
+def test_dp5_matches_scipy_rk45_exactly():
+    # Dormand & Prince 1980: scipy's RK45 carries the same A, B, C (REFERENCES.md).
+    from scipy.integrate._ivp.rk import RK45
+
+    a, b, c = builtin("dp5").floats()
+    np.testing.assert_array_equal(a[:6, :5], RK45.A)
+    np.testing.assert_array_equal(b[:6], RK45.B)
+    np.testing.assert_array_equal(c[:6], RK45.C)
+
+
+def test_bs3_matches_scipy_rk23_exactly():
+    # Bogacki & Shampine 1989 equals scipy's RK23 (REFERENCES.md).
+    from scipy.integrate._ivp.rk import RK23
+
+    a, b, c = builtin("bs3").floats()
+    np.testing.assert_array_equal(a[:3, :RK23.A.shape[1]], RK23.A)
+    np.testing.assert_array_equal(b[:3], RK23.B)
+    np.testing.assert_array_equal(c[:3], RK23.C)
+
+
+def test_rk4_one_step_is_the_taylor_polynomial_on_linear_problems():
+    # REFERENCES.md: one RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial.
+    from codegen.reference import explicit_step
+
+    A = np.array([[-2.0, 1.0], [0.5, -3.0]])
+    x0 = np.array([1.0, -0.5])
+    h = 0.1
+    a, b, c = builtin("rk4").floats()
+    x1 = explicit_step(lambda t, x, u: A @ x, a, b, c, 0.0, x0, None, h)
+    hA = h * A
+    R4 = np.eye(2) + hA + hA @ hA / 2 + hA @ hA @ hA / 6 + hA @ hA @ hA @ hA / 24
+    np.testing.assert_allclose(x1, R4 @ x0, rtol=1e-15, atol=1e-15)
+
+
+def test_exact_entries_stay_exact():
+    assert exact("1/3") == sp.Rational(1, 3)
+    assert exact("sqrt(3)/6") == sp.sqrt(3) / 6
+    assert exact(0.1) == sp.Rational(1, 10)
+    with pytest.raises(MethodError, match="not an exact number"):
+        exact("__import__('os')")
+    with pytest.raises(MethodError, match="division by zero"):
+        exact("1/0")
+
+
+def write(tmp_path, text):
+    path = tmp_path / "mine.toml"
+    path.write_text(text)
+    return path
+
+
+def test_a_user_tableau_file_loads_with_exact_strings(tmp_path):
+    path = write(tmp_path, 'name = "my ralston"\norder = 2\nc = [0, "2/3"]\nb = ["1/4", "3/4"]\n'
+                           'a = [[0, 0], ["2/3", 0]]\n')
+    t = load_tableau(path)
+    assert t.kind == EXPLICIT and t.b == (sp.Rational(1, 4), sp.Rational(3, 4))
+
+
+@pytest.mark.parametrize("text, fragment", [
+    ('name = "x"\nc = [0, "1/2"]\nb = [0, 1]\na = [[0, 0], ["1/3", 0]]\n',
+     "a[1]: row sums to 1/3 but c[1] = 1/2"),
+    ('name = "x"\nc = [0, 1]\nb = ["1/2", "1/3"]\na = [[0, 0], [1, 0]]\n', "b: weights sum"),
+    ('name = "x"\nc = [0, 1]\nb = ["1/2", "1/2"]\na = [[0, 0]]\n', "a: must be 2 rows"),
+    ('name = "x"\nc = [0]\nb = ["1/2", "1/2"]\na = [[0, 0], [1, 0]]\n', "c: must have 2"),
+    ('name = "x"\nc = [0]\nb = [1]\n', "a: missing"),
+    ('name = "x"\nc = [0]\nb = [1]\na = [[0]]\nd = 1\n', "d: unknown key"),
+    ('name = "x"\nc = [0]\nb = ["one"]\na = [[0]]\n', "b[0]"),
+    ('name = "x"\nc = [0]\nb = [1]\na = [[0]]\norder = "one"\n', "order: must be a whole number"),
+    ("name = ", "not valid TOML"),
+])
+def test_bad_user_tableaux_are_one_clear_line(tmp_path, text, fragment):
+    path = write(tmp_path, text)
+    with pytest.raises(MethodError) as info:
+        load_tableau(path)
+    assert str(path) in str(info.value) and fragment in str(info.value)
+    assert "\n" not in str(info.value)
+
+
+def test_unknown_method_suggests_a_near_name():
+    with pytest.raises(MethodError, match="did you mean 'rk4'"):
+        builtin("rk44")
+
+
+def test_built_in_data_is_plain_data():
+    # Adding a method is adding data: every entry is a dict of strings and numbers.
+    for entry in BUILTIN_TABLEAUX.values():
+        assert isinstance(entry, dict) and {"name", "a", "b", "c", "source"} <= set(entry)
