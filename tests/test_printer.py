@@ -13,8 +13,8 @@ x, y = sp.symbols("x y", real=True)
 
 @pytest.mark.parametrize("expr, float_text, double_text", [
     (x ** 2, "(x*x)", "(x*x)"),
-    (x ** 3 * y, "y*(x*x*x)", "y*(x*x*x)"),
-    (x ** -2, "(1.0F/((x*x)))", "(1.0/((x*x)))"),
+    (x ** 3 * y, "(x*x*x)*y", "(x*x*x)*y"),
+    (x ** -2, "(1.0F/(x*x))", "(1.0/(x*x))"),
     (sp.sqrt(x), "sqrtf(x)", "sqrt(x)"),
     (x ** sp.Rational(5, 2), "powf(x, 2.5F)", "pow(x, 2.5)"),
     (sp.sin(x), "sinf(x)", "sin(x)"),
