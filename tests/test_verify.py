@@ -1,0 +1,153 @@
+"""Compile-and-compare: the generated C against the reference and against outside solutions."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+import sympy as sp
+
+from codegen.build import build
+from codegen.method import EXPLICIT, builtin, builtin_ids
+from codegen.model import Input, Parameter, State, define, load_model
+from codegen.pipeline import generate
+from codegen.verify import ORDER_TOLERANCE, check, run_c
+
+from conftest import DEMO_MODELS
+
+EXPLICIT_IDS = [i for i in builtin_ids() if builtin(i).kind == EXPLICIT]
+# Ticks per demo model: fast enough to see the dynamics, stable for every explicit method.
+DEMO_DT = {"heater": 0.5, "axis": 1e-4}
+
+
+@pytest.mark.parametrize("method_id", EXPLICIT_IDS)
+@pytest.mark.parametrize("model_path", DEMO_MODELS, ids=lambda p: p.stem)
+def test_check_passes_for_every_explicit_method(model_path, method_id):
+    model = load_model(model_path)
+    method = builtin(method_id)
+    report = check(model, method, DEMO_DT[model.name], ticks=300)
+    assert [c.precision for c in report.cross_checks] == ["float", "double"]
+    for c in report.cross_checks:
+        assert c.passed and c.completed == 300, c
+        assert c.max_difference <= c.tolerance
+    # The measured order matches the tableau's (within the project's acceptance bound).
+    assert report.order.passed, report.order
+    assert abs(report.order.measured - method.order) <= ORDER_TOLERANCE
+    assert report.passed
+
+
+# Burden & Faires, Numerical Analysis (9th ed.), chapter 5 (from memory; REFERENCES.md):
+# y' = y - t^2 + 1, y(0) = 0.5, h = 0.2; reproduced here to 7 digits.
+BURDEN_FAIRES = {
+    "euler": {1: 0.8000000, 10: 4.8657845},
+    "midpoint": {10: 5.2903695},
+    "heun": {10: 5.2330546},
+    "rk4": {1: 0.8292933, 2: 1.2140762, 10: 5.3053630},
+}
+
+
+def worked_example_model():
+    y, t = sp.Symbol("y", real=True), sp.Symbol("t", real=True)
+    return define("bf", states=[State("y", initial=0.5, rate=y - t ** 2 + 1)])
+
+
+@pytest.mark.parametrize("method_id", sorted(BURDEN_FAIRES))
+def test_generated_c_reproduces_the_burden_faires_worked_example(method_id):
+    model = worked_example_model()
+    built = build(generate(model, builtin(method_id), 0.2, precision="double"), model)
+    run = run_c(built, model, np.zeros((10, 0)))
+    assert run.completed == 10
+    for k, w in BURDEN_FAIRES[method_id].items():
+        assert run.xs[k, 0] == pytest.approx(w, abs=5e-8), (k, run.xs[k, 0])
+    # The exact solution (t + 1)^2 - 0.5 e^t gives y(2) = 5.3054720 (same source).
+    assert (2 + 1) ** 2 - 0.5 * math.exp(2) == pytest.approx(5.3054720, abs=5e-8)
+
+
+def test_float_build_reproduces_the_worked_example_to_float_accuracy():
+    model = worked_example_model()
+    built = build(generate(model, builtin("rk4"), 0.2, precision="float"), model)
+    run = run_c(built, model, np.zeros((10, 0)))
+    # Burden & Faires RK4 w10 = 5.3053630 (from memory); float32 holds about 7 digits.
+    assert run.xs[10, 0] == pytest.approx(5.3053630, rel=2e-6)
+
+
+def decay_model():
+    x, a = sp.Symbol("x", real=True), sp.Symbol("a", real=True)
+    return define("decay", states=[State("x", initial=1.0, rate=-a * x)],
+                  parameters=[Parameter("a", value=3.0)])
+
+
+@pytest.mark.parametrize("method_id", EXPLICIT_IDS)
+def test_linear_decay_matches_the_stability_polynomial(method_id):
+    # Analytic: one step of any RK method on x' = lambda x multiplies x by R(h lambda), with
+    # R(z) = 1 + z b^T (I - zA)^{-1} 1 (REFERENCES.md, Dahlquist test). Computed exactly here.
+    method = builtin(method_id)
+    model = decay_model()
+    h, lam = 0.05, -3.0
+    A = sp.Matrix(method.a)
+    z = sp.Rational(h) * lam
+    R = 1 + z * (sp.Matrix([method.b]) * (sp.eye(method.stages) - z * A).inv()
+                 * sp.ones(method.stages, 1))[0]
+    built = build(generate(model, method, h, precision="double"), model)
+    run = run_c(built, model, np.zeros((20, 0)))
+    expected = [float(R) ** k for k in range(21)]
+    np.testing.assert_allclose(run.xs[:, 0], expected, rtol=1e-13)
+    # And close to the analytic solution e^{lambda t} to the method's accuracy.
+    assert abs(run.xs[-1, 0] - math.exp(lam * 1.0)) < 0.05
+
+
+def test_nan_input_returns_nonfinite_and_leaves_the_state_unchanged(heater):
+    built = build(generate(heater, builtin("rk4"), 0.1, precision="float"), heater)
+    ffi, lib = built.ffi, built.lib
+    ctx = ffi.new("heater_ctx_t *")
+    lib.heater_reset(ctx)
+    ctx.duty = 0.5
+    assert lib.heater_advance(ctx) == lib.HEATER_OK
+    before = (ctx.t, ctx.T, ctx.duty, ctx.C_th)
+    ctx.duty = float("nan")
+    assert lib.heater_advance(ctx) == lib.HEATER_NONFINITE
+    assert math.isnan(ctx.duty)
+    assert (ctx.t, ctx.T, ctx.C_th) == (before[0], before[1], before[3])
+
+
+def test_overflow_returns_nonfinite_and_leaves_the_state_unchanged():
+    x = sp.Symbol("x", real=True)
+    model = define("blowup", states=[State("x", initial=1e30, rate=x * x)])
+    built = build(generate(model, builtin("euler"), 1.0, precision="float"), model)
+    ctx = built.ffi.new("blowup_ctx_t *")
+    built.lib.blowup_reset(ctx)
+    assert built.lib.blowup_advance(ctx) == built.lib.BLOWUP_NONFINITE
+    assert ctx.x == pytest.approx(1e30, rel=1e-7) and ctx.t == 0.0
+
+
+def test_cross_check_catches_a_wrong_coefficient(heater):
+    # The check must be able to fail: a tableau off by 1e-3 in one weight still sums to 1 but
+    # the C (built from it) no longer matches the reference of the true method.
+    from dataclasses import replace
+
+    good = builtin("rk4")
+    bad = replace(good, b=(sp.Rational(1, 6) + sp.Rational(1, 1000), sp.Rational(1, 3) -
+                           sp.Rational(1, 1000), sp.Rational(1, 3), sp.Rational(1, 6)))
+    from codegen import reference
+    from codegen.verify import as_precision, test_inputs
+
+    model = heater
+    u = test_inputs(model, 100)
+    c_run = run_c(build(generate(model, bad, 0.5, precision="double"), model), model, u)
+    ref = reference.run(model, good, 0.5, 1, u)
+    assert np.max(np.abs(c_run.xs - ref.xs)) > 1e-6
+    # ...and the order study of the wrong method measures order 1 or 2, not 4.
+    from codegen.verify import measure_order
+
+    study = measure_order(model, bad, expected=4)
+    assert not study.passed and study.measured < 3
+
+
+def test_time_dependent_model_uses_stage_times():
+    # x' = cos(t): the exact solution is sin(t) (analytic); RK4 integrates it with error O(h^4).
+    x, t = sp.Symbol("x", real=True), sp.Symbol("t", real=True)
+    model = define("clock", states=[State("x", initial=0.0, rate=sp.cos(t))])
+    built = build(generate(model, builtin("rk4"), 0.01, precision="double"), model)
+    run = run_c(built, model, np.zeros((300, 0)))
+    np.testing.assert_allclose(run.xs[:, 0], np.sin(run.ts), atol=1e-10)
