@@ -18,11 +18,14 @@ from pathlib import Path
 
 import sympy as sp
 
+from .analysis_data import IMPLICIT_TABLEAUX, ROSENBROCK_METHODS
 from .errors import MethodError, located
 
 EXPLICIT = "explicit"
 DIAGONALLY_IMPLICIT = "diagonally implicit"
 FULLY_IMPLICIT = "fully implicit"
+LINEARLY_IMPLICIT = "linearly implicit"
+EXACT = "exact"
 
 
 @dataclass(frozen=True)
@@ -253,26 +256,133 @@ BUILTIN_TABLEAUX: dict[str, dict] = {
         source="Dormand & Prince 1980, J. Comput. Appl. Math. 6 (scipy RK45 uses the same A, B, C)"),
 }
 
-# Other names a user may type for a built-in method.
-ALIASES: dict[str, str] = {}
+# The implicit tableaux (backward Euler ... SDIRK3) live as data beside the analysis stage, with
+# their published sources; they join the built-in table after dp5 so the listing stays in order.
+BUILTIN_TABLEAUX.update(IMPLICIT_TABLEAUX)
 
-_CACHE: dict[str, Tableau] = {}
+# Other names a user may type for a built-in method.
+ALIASES: dict[str, str] = {"crank-nicolson": "trapezoidal"}
+
+
+# ---------------------------------------------------------------------------------------------
+# Methods that are not Butcher tableaux: linearly implicit (Rosenbrock) and exact discretization.
+# ---------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class LinearlyImplicit:
+    """A Rosenbrock (linearly implicit) method: one linear solve per stage, no Newton loop.
+
+    (I - gamma h J) k_i = f(t + alpha_i h, y + h sum_j alpha_ij k_j) + sum_j coupling_ij k_j
+                          + time_i h df/dt,
+    y_next = y + h sum_i b_i k_i, with alpha_i = sum_j alpha_ij and J = df/dx at (t, y).
+
+    References
+    ----------
+    HW, section IV.7 (from memory); Verwer, Spee, Blom & Hundsdorfer 1999, SIAM J. Sci. Comput. 20(4).
+    """
+
+    id: str
+    name: str
+    gamma: sp.Expr
+    alpha: tuple[tuple[sp.Expr, ...], ...]
+    coupling: tuple[tuple[sp.Expr, ...], ...]
+    b: tuple[sp.Expr, ...]
+    time: tuple[sp.Expr, ...]
+    order: int | None = None
+    source: str = ""
+    embedded_order: None = None
+    b_hat: None = None
+
+    def __post_init__(self) -> None:
+        s = len(self.b)
+        for item, rows in (("alpha", self.alpha), ("coupling", self.coupling)):
+            if len(rows) != s or any(len(r) != s for r in rows) or \
+                    any(rows[i][j] != 0 for i in range(s) for j in range(i, s)):
+                raise MethodError(located(self.id, item, f"must be {s} x {s} and strictly lower "
+                                          "triangular"))
+        if len(self.time) != s or len(self.b) != s:
+            raise MethodError(located(self.id, "time", f"must have {s} entries to match b"))
+
+    @property
+    def stages(self) -> int:
+        return len(self.b)
+
+    @property
+    def c(self) -> tuple[sp.Expr, ...]:
+        return tuple(sum(row, sp.Integer(0)) for row in self.alpha)
+
+    kind = LINEARLY_IMPLICIT
+    is_explicit = False
+
+
+@dataclass(frozen=True)
+class ExactDiscretization:
+    """Exact zero-order-hold discretization of a model linear in states and inputs.
+
+    x(t + h) = expm(A h) x + (int_0^h expm(A s) ds) (B u + e), computed at generation time.
+    No finite order: the step is exact for inputs held over the tick.
+    """
+
+    id: str
+    name: str
+    source: str = ""
+    order: None = None
+    embedded_order: None = None
+    b_hat: None = None
+    stages: int = 1  # one application of the propagator per step
+
+    kind = EXACT
+    is_explicit = False
+
+
+# Time-derivative weights time_i of each Rosenbrock stage (needed when f depends on t explicitly):
+# gamma_i = sum_j gamma_ij of the method's Gamma matrix in HW's form. For ROS2 they are (gamma,
+# -gamma), which makes the step reduce to the trapezoidal rule on y' = g(t) (order 2).
+ROSENBROCK_TIME_WEIGHTS: dict[str, list] = {
+    "rosenbrock-euler": ["1"],
+    "ros2": ["1 + 1/sqrt(2)", "-(1 + 1/sqrt(2))"],
+}
+
+EXACT_METHODS: dict[str, dict] = {
+    "zoh-exact": dict(
+        name="exact zero-order hold (matrix exponential)",
+        source="common practice, no source; equals scipy.signal.cont2discrete(method='zoh')"),
+}
+
+_CACHE: dict[str, object] = {}
 
 
 def builtin_ids() -> list[str]:
     """The built-in method ids in the order they are listed."""
-    return list(BUILTIN_TABLEAUX)
+    return list(BUILTIN_TABLEAUX) + list(ROSENBROCK_METHODS) + list(EXACT_METHODS)
 
 
-def builtin(method_id: str) -> Tableau:
-    """The built-in tableau with this id (or alias)."""
+def _rosenbrock(key: str) -> LinearlyImplicit:
+    data = ROSENBROCK_METHODS[key]
+    where = f"built-in method {key}"
+    rows = lambda name: tuple(tuple(exact(v, where, name) for v in r) for r in data[name])
+    return LinearlyImplicit(
+        id=key, name=data["name"], gamma=exact(data["gamma"], where, "gamma"),
+        alpha=rows("alpha"), coupling=rows("coupling"),
+        b=tuple(exact(v, where, "b") for v in data["b"]),
+        time=tuple(exact(v, where, "time") for v in ROSENBROCK_TIME_WEIGHTS[key]),
+        order=data["order"], source=data["source"])
+
+
+def builtin(method_id: str):
+    """The built-in method with this id (or alias): a Tableau, LinearlyImplicit or exact method."""
     key = ALIASES.get(method_id, method_id)
-    if key not in BUILTIN_TABLEAUX:
+    if key not in builtin_ids():
         import difflib
 
-        hint = difflib.get_close_matches(method_id, list(BUILTIN_TABLEAUX) + list(ALIASES), n=1)
+        hint = difflib.get_close_matches(method_id, builtin_ids() + list(ALIASES), n=1)
         fix = f"did you mean '{hint[0]}'?" if hint else "see 'tickwright methods'"
         raise MethodError(f"--method: unknown method '{method_id}' ({fix})")
     if key not in _CACHE:
-        _CACHE[key] = tableau_from_data(BUILTIN_TABLEAUX[key], f"built-in method {key}", key)
+        if key in ROSENBROCK_METHODS:
+            _CACHE[key] = _rosenbrock(key)
+        elif key in EXACT_METHODS:
+            _CACHE[key] = ExactDiscretization(id=key, **EXACT_METHODS[key])
+        else:
+            _CACHE[key] = tableau_from_data(BUILTIN_TABLEAUX[key], f"built-in method {key}", key)
     return _CACHE[key]

@@ -1,0 +1,582 @@
+"""Stage 5 for implicit methods: simplified ImplicitStep -> C text, through the same templates.
+
+Reuses emit.py's context and helpers (names, reset/rates/outputs functions, commit). Adds the
+Jacobian function, the factor and solve functions of the planned linear solve, and an advance
+function that computes into locals and commits to the context only after every check passed:
+a zero or non-finite pivot returns SINGULAR, a Newton iteration that does not meet its
+tolerance within the fixed iteration limit (or diverges to a non-finite iterate) returns
+NO_CONVERGENCE, a non-finite new state returns NONFINITE; the context is then untouched.
+"""
+
+from __future__ import annotations
+
+import sympy as sp
+
+from .emit import (CSource, Names, _unique, base_context, block_lines, coefficient, commit_lines,
+                   finish, free_names, load_lines, outputs_function, reset_function,
+                   rates_function, unpack_lines)
+from .errors import EmitError
+from .implicit import DENSE_LU, ELIMINATION, EXACT, G, INVERSE, ImplicitStep, LinearSolve
+from .method import DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
+from .printer import FLOAT, PRECISIONS, Printer
+
+
+def emit_implicit(step: ImplicitStep, precision: str = FLOAT) -> CSource:
+    """Render the header and source for a simplified implicit step."""
+    if precision not in PRECISIONS:
+        raise EmitError(f"--precision: must be one of {', '.join(PRECISIONS)}, got {precision!r}")
+    return finish(step, precision, implicit_context(step, precision))
+
+
+class _Writer:
+    """Shared state while writing one file: names, printer, constants and C spellings."""
+
+    def __init__(self, step: ImplicitStep, ctx: dict, precision: str):
+        self.step = step
+        self.model = step.model
+        self.names: Names = ctx["names"]
+        self.printer: Printer = ctx["printer"]
+        self.real_t = self.names.real_t
+        self.up = self.names.upper
+        self.p = self.model.name
+        self.nx = self.names.macro("NX")
+        self.fabs = "fabsf" if precision == FLOAT else "fabs"
+        self.zero = self.printer.literal(0)
+        self.one = self.printer.literal(1)
+        self.constants: list = []
+
+    def const(self, name: str, value, note: str) -> str:
+        return coefficient(self.constants, f"{self.up}_{name}", value, self.printer, note)
+
+    def raw(self, name: str, value: str, note: str) -> str:
+        self.constants.append(dict(name=f"{self.up}_{name}", value=value, comment=note))
+        return f"{self.up}_{name}"
+
+    def time(self, offset, label: str) -> str:
+        if offset == 0:
+            return "tw_t"
+        return f"tw_t + {self.const(label, offset, label.lower().replace('h', '*h'))}"
+
+
+# ---------------------------------------------------------------------------------------------
+# Functions shared by the schemes
+# ---------------------------------------------------------------------------------------------
+
+def block_function(w: _Writer, block, fname: str, out: str, doc: str) -> dict:
+    """A static function computing a block from (t, x, ctx) into the array out."""
+    model = w.model
+    used = free_names(block)
+    body = unpack_lines(w.names, w.step, used, from_x=True)
+    if model.time not in used:
+        body.append(f"(void){model.time};")
+    if not used & {s.name for s in model.states}:
+        body.append("(void)tw_x;")
+    if not used & ({u.name for u in model.inputs} | {p.name for p in model.tunable}):
+        body.append("(void)tw_ctx;")
+    body += block_lines(block, w.printer, w.real_t, lambda i, name: f"{out}[{i}]")
+    return dict(doc=doc, signature=f"static void {w.p}_{fname}(const {w.real_t} {model.time}, "
+                f"const {w.real_t} *restrict tw_x, const {w.names.ctx_t} *restrict tw_ctx, "
+                f"{w.real_t} *restrict {out})", body=body)
+
+
+def _entry_value(w: _Writer, entry, solve: LinearSolve, nx: int) -> str:
+    terms = []
+    for coeff, k in entry.terms:
+        if coeff == G:
+            name = "tw_g"
+        else:
+            p, q = entry.row // nx + 1, entry.col // nx + 1
+            name = w.const(f"A{p}{q}H", coeff, f"a{p}{q}*h")
+        terms.append(f"{name} * tw_jac[{k}]")
+    if not terms:
+        return w.one if entry.one else w.zero
+    total = " + ".join(terms)
+    return f"{w.one} - ({total})" if entry.one else f"-({total})"
+
+
+def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
+    """Assemble M = I - (C (x) J) and factor it: straight-line elimination or looped dense LU."""
+    if solve.kind == INVERSE:
+        return None
+    nx = w.model.nx
+    n = solve.size
+    scale_arg = f"const {w.real_t} tw_g, " if solve.needs_scale else ""
+    fail = ["    return 1;", "}"]
+    if solve.kind == ELIMINATION:
+        slot = solve.slot()
+        body = [f"/* assemble the {len(solve.entries)} structural non-zeros; fill-in starts at 0 */"]
+        given = {(e.row, e.col): e for e in solve.entries}
+        for rc in solve.filled:
+            value = _entry_value(w, given[rc], solve, nx) if rc in given else w.zero
+            body.append(f"tw_lu[{slot[rc]}] = {value};")
+        position = {v: k for k, v in enumerate(solve.order)}
+        body.append("/* eliminate in reverse Cuthill-McKee order; no pivoting, pivots guarded */")
+        filled = set(solve.filled)
+        for k in solve.order:
+            pk = slot[(k, k)]
+            body += [f"if (!({w.fabs}(tw_lu[{pk}]) > {w.zero}) || !isfinite(tw_lu[{pk}])) {{",
+                     *fail]
+            below = [i for i in range(n) if (i, k) in filled and position[i] > position[k]]
+            right = [j for j in range(n) if (k, j) in filled and position[j] > position[k]]
+            for i in below:
+                body.append(f"tw_lu[{slot[(i, k)]}] = tw_lu[{slot[(i, k)]}] / tw_lu[{pk}];")
+                for j in right:
+                    body.append(f"tw_lu[{slot[(i, j)]}] = tw_lu[{slot[(i, j)]}] - "
+                                f"tw_lu[{slot[(i, k)]}] * tw_lu[{slot[(k, j)]}];")
+        body.append("return 0;")
+        return dict(doc=f"Assemble and factor the {n} x {n} iteration matrix by straight-line "
+                    "elimination along its sparsity pattern. Returns 1 on a zero or non-finite "
+                    "pivot.",
+                    signature=f"static int {w.p}_factor(const {w.real_t} *restrict tw_jac, "
+                              f"{scale_arg}{w.real_t} *restrict tw_lu)",
+                    body=body)
+    size = w.raw("NSOLVE", f"{n}U", "size of the linear system of one solve")
+    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", "size_t tw_p;",
+            f"{w.real_t} tw_big;", f"{w.real_t} tw_m;", "",
+            f"for (tw_i = 0U; tw_i < {size} * {size}; ++tw_i) {{",
+            f"    tw_lu[tw_i] = {w.zero};", "}"]
+    body += [f"tw_lu[{e.row * n + e.col}] = {_entry_value(w, e, solve, nx)};"
+             for e in solve.entries]
+    body += [
+        f"for (tw_k = 0U; tw_k < {size}; ++tw_k) {{",
+        "    tw_p = tw_k;",
+        f"    tw_big = {w.fabs}(tw_lu[tw_k * {size} + tw_k]);",
+        f"    for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
+        f"        if ({w.fabs}(tw_lu[tw_i * {size} + tw_k]) > tw_big) {{",
+        f"            tw_big = {w.fabs}(tw_lu[tw_i * {size} + tw_k]);",
+        "            tw_p = tw_i;",
+        "        }",
+        "    }",
+        "    tw_piv[tw_k] = tw_p;",
+        f"    if (!(tw_big > {w.zero}) || !isfinite(tw_big)) {{",
+        "        return 1;",
+        "    }",
+        "    if (tw_p != tw_k) {",
+        f"        for (tw_j = 0U; tw_j < {size}; ++tw_j) {{",
+        f"            tw_m = tw_lu[tw_k * {size} + tw_j];",
+        f"            tw_lu[tw_k * {size} + tw_j] = tw_lu[tw_p * {size} + tw_j];",
+        f"            tw_lu[tw_p * {size} + tw_j] = tw_m;",
+        "        }",
+        "    }",
+        f"    for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
+        f"        tw_m = tw_lu[tw_i * {size} + tw_k] / tw_lu[tw_k * {size} + tw_k];",
+        f"        tw_lu[tw_i * {size} + tw_k] = tw_m;",
+        f"        for (tw_j = tw_k + 1U; tw_j < {size}; ++tw_j) {{",
+        f"            tw_lu[tw_i * {size} + tw_j] = tw_lu[tw_i * {size} + tw_j] - "
+        f"tw_m * tw_lu[tw_k * {size} + tw_j];",
+        "        }",
+        "    }",
+        "}",
+        "return 0;"]
+    return dict(doc=f"Assemble the {n} x {n} iteration matrix and factor it by LU with partial "
+                "pivoting (row swaps in tw_piv). Returns 1 on a zero or non-finite pivot.",
+                signature=f"static int {w.p}_factor(const {w.real_t} *restrict tw_jac, {scale_arg}"
+                          f"{w.real_t} *restrict tw_lu, size_t *restrict tw_piv)",
+                body=body)
+
+
+def solve_functions(w: _Writer, solve: LinearSolve) -> list[dict]:
+    """In-place solve M d = r with the factors (or with the generation-time inverse)."""
+    n = solve.size
+    if solve.kind == INVERSE:
+        functions = []
+        for which, inverse in enumerate(solve.inverses):
+            suffix = f"{which + 1}" if len(solve.inverses) > 1 else ""
+            body = [f"{w.real_t} tw_in[{n}];", "size_t tw_i;", "",
+                    f"for (tw_i = 0U; tw_i < {n}U; ++tw_i) {{", "    tw_in[tw_i] = tw_r[tw_i];", "}"]
+            for i in range(n):
+                terms = [f"{w.printer.literal(v)} * tw_in[{j}]" for j, v in enumerate(inverse[i])
+                         if v != 0]
+                body.append(f"tw_r[{i}] = " + (" + ".join(terms) if terms else w.zero) + ";")
+            note = f" (h*a = {solve.diagonals[which]})" if solve.diagonals else ""
+            functions.append(dict(
+                doc=f"Solve M d = r in place with the inverse of the constant iteration matrix"
+                    f"{note}, computed at generation time in {50}-digit arithmetic.",
+                signature=f"static void {w.p}_solve{suffix}({w.real_t} *restrict tw_r)",
+                body=body))
+        return functions
+    if solve.kind == ELIMINATION:
+        slot = solve.slot()
+        filled = set(solve.filled)
+        position = {v: k for k, v in enumerate(solve.order)}
+        body = ["/* forward substitution (unit lower factor) */"]
+        for i in solve.order:
+            terms = [f"tw_lu[{slot[(i, k)]}] * tw_r[{k}]" for k in solve.order
+                     if (i, k) in filled and position[k] < position[i]]
+            if terms:
+                body.append(f"tw_r[{i}] = tw_r[{i}] - ({' + '.join(terms)});")
+        body.append("/* back substitution */")
+        for i in reversed(solve.order):
+            terms = [f"tw_lu[{slot[(i, j)]}] * tw_r[{j}]" for j in solve.order
+                     if (i, j) in filled and position[j] > position[i]]
+            rest = f"(tw_r[{i}] - ({' + '.join(terms)}))" if terms else f"tw_r[{i}]"
+            body.append(f"tw_r[{i}] = {rest} / tw_lu[{slot[(i, i)]}];")
+        return [dict(doc="Solve M d = r in place with the straight-line factors.",
+                     signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
+                               f"{w.real_t} *restrict tw_r)",
+                     body=body)]
+    size = f"{w.up}_NSOLVE"
+    body = ["size_t tw_i;", "size_t tw_j;", f"{w.real_t} tw_s;", "",
+            f"for (tw_i = 0U; tw_i < {size}; ++tw_i) {{",
+            "    if (tw_piv[tw_i] != tw_i) {",
+            "        tw_s = tw_r[tw_i];",
+            "        tw_r[tw_i] = tw_r[tw_piv[tw_i]];",
+            "        tw_r[tw_piv[tw_i]] = tw_s;",
+            "    }",
+            "}",
+            f"for (tw_i = 1U; tw_i < {size}; ++tw_i) {{",
+            "    tw_s = tw_r[tw_i];",
+            "    for (tw_j = 0U; tw_j < tw_i; ++tw_j) {",
+            f"        tw_s = tw_s - tw_lu[tw_i * {size} + tw_j] * tw_r[tw_j];",
+            "    }",
+            "    tw_r[tw_i] = tw_s;",
+            "}",
+            f"for (tw_i = {size}; tw_i-- > 0U;) {{",
+            "    tw_s = tw_r[tw_i];",
+            f"    for (tw_j = tw_i + 1U; tw_j < {size}; ++tw_j) {{",
+            f"        tw_s = tw_s - tw_lu[tw_i * {size} + tw_j] * tw_r[tw_j];",
+            "    }",
+            f"    tw_r[tw_i] = tw_s / tw_lu[tw_i * {size} + tw_i];",
+            "}"]
+    return [dict(doc="Solve M d = r in place with the pivoted LU factors.",
+                 signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
+                           f"const size_t *restrict tw_piv, {w.real_t} *restrict tw_r)",
+                 body=body)]
+
+
+class _Solver:
+    """C spellings of factor and solve calls for one planned linear solve."""
+
+    def __init__(self, w: _Writer, solve: LinearSolve):
+        self.w, self.solve = w, solve
+
+    def declarations(self) -> list[str]:
+        s, w = self.solve, self.w
+        if s.kind == ELIMINATION:
+            return [f"{w.real_t} tw_lu[{len(s.filled)}];"]
+        if s.kind == DENSE_LU:
+            return [f"{w.real_t} tw_lu[{s.size * s.size}];", f"size_t tw_piv[{s.size}];"]
+        return []
+
+    def factor(self, g_name: str | None) -> list[str]:
+        s, w = self.solve, self.w
+        if s.kind == INVERSE:
+            return []
+        args = "tw_jac, " + (f"{g_name}, " if s.needs_scale else "") + "tw_lu" + \
+            (", tw_piv" if s.kind == DENSE_LU else "")
+        return [f"if ({w.p}_factor({args}) != 0) {{",
+                f"    return {w.names.status('SINGULAR')};", "}"]
+
+    def call(self, vector: str, which: int = 0) -> str:
+        s, w = self.solve, self.w
+        if s.kind == INVERSE:
+            suffix = f"{which + 1}" if len(s.inverses) > 1 else ""
+            return f"{w.p}_solve{suffix}({vector});"
+        if s.kind == DENSE_LU:
+            return f"{w.p}_solve(tw_lu, tw_piv, {vector});"
+        return f"{w.p}_solve(tw_lu, {vector});"
+
+
+def _scale_lines(w: _Writer) -> list[str]:
+    lines = []
+    for i, (s, scale) in enumerate(zip(w.model.states, w.step.newton.scale)):
+        name = w.const(f"SCALE_{s.name.upper()}", sp.Rational(repr(float(scale))),
+                       f"Newton scale floor of {s.name}")
+        lines.append(f"tw_scale[{i}] = {name} + {w.fabs}(tw_x[{i}]);")
+    return lines
+
+
+def _newton_test(w: _Writer, size: int, z: str, per_state: bool) -> list[str]:
+    """Apply the correction tw_r to z and set tw_err to max |correction| / scale (NaN sticks)."""
+    index = "tw_i % " + w.nx if per_state else "tw_i"
+    return [f"tw_err = {w.zero};",
+            f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{",
+            f"    const {w.real_t} tw_e = {w.fabs}(tw_r[tw_i]) / tw_scale[{index}];",
+            f"    {z}[tw_i] = {z}[tw_i] + tw_r[tw_i];",
+            "    if (tw_e > tw_err || isnan(tw_e)) {",
+            "        tw_err = tw_e;",
+            "    }",
+            "}"]
+
+
+def _newton_loop(w: _Writer, inner: list[str], size: int, z: str, per_state: bool) -> list[str]:
+    """The bounded simplified-Newton loop around one residual evaluation + solve."""
+    tol = f"{w.up}_NEWTON_TOL"
+    body = ["tw_done = 0U;",
+            f"for (tw_it = 0U; tw_it < {w.up}_NEWTON_ITERATIONS; ++tw_it) {{"]
+    body += ["    " + line if line else line for line in inner + _newton_test(w, size, z, per_state)]
+    body += [f"    if (tw_err <= {tol}) {{",
+             "        tw_done = 1U;",
+             "        break;",
+             "    }",
+             "    if (!isfinite(tw_err)) {",
+             "        break;  /* diverged */",
+             "    }",
+             "}",
+             "if (tw_done == 0U) {",
+             f"    return {w.names.status('NO_CONVERGENCE')};",
+             "}"]
+    return body
+
+
+def _sum(terms) -> str:
+    return " + ".join(terms)
+
+
+# ---------------------------------------------------------------------------------------------
+# Advance bodies, one per scheme
+# ---------------------------------------------------------------------------------------------
+
+def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
+    step, method = w.step, w.step.method
+    s = method.stages
+    h = step.h
+    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_w[{w.nx}];",
+            f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_f[{w.nx}];", f"{w.real_t} tw_r[{w.nx}];"]
+    inner: list[str] = []
+    nonlinear = not step.linear
+    if nonlinear:
+        decl += [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
+                 "uint32_t tw_done;"]
+        inner += _scale_lines(w)
+    factored = None
+    diagonals = list(step.solve.diagonals)
+    for i in range(s):
+        inner.append(f"/* stage {i + 1}: c = {method.c[i]} */")
+        terms = [f"{w.const(f'A{i + 1}{j + 1}H', h * method.a[i][j], f'a{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.a[i][j] != 0]
+        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                  f"    tw_w[tw_i] = tw_x[tw_i]" + (f" + ({_sum(terms)});" if terms else ";"),
+                  "}"]
+        time = w.time(method.c[i] * h, f"C{i + 1}H")
+        g = h * method.a[i][i]
+        if g == 0:
+            inner.append(f"{w.p}_rates({time}, tw_w, tw_ctx, tw_k[{i}]);")
+            continue
+        which = diagonals.index(g)
+        g_name = w.const(f"A{i + 1}{i + 1}H", g, f"a{i + 1}{i + 1}*h")
+        if factored != g:
+            inner += solver.factor(g_name)
+            factored = g
+        if nonlinear:
+            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{", "    tw_y[tw_i] = tw_w[tw_i];",
+                      "}"]
+            residual = [f"{w.p}_rates({time}, tw_y, tw_ctx, tw_f);",
+                        f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                        f"    tw_r[tw_i] = tw_w[tw_i] + {g_name} * tw_f[tw_i] - tw_y[tw_i];",
+                        "}",
+                        solver.call("tw_r", which)]
+            inner += _newton_loop(w, residual, w.model.nx, "tw_y", per_state=False)
+        else:
+            inner += ["/* f is linear in x: one Newton step from the stage base is exact */",
+                      f"{w.p}_rates({time}, tw_w, tw_ctx, tw_f);",
+                      f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                      f"    tw_r[tw_i] = {g_name} * tw_f[tw_i];",
+                      "}",
+                      solver.call("tw_r", which),
+                      f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                      "    tw_y[tw_i] = tw_w[tw_i] + tw_r[tw_i];",
+                      "}"]
+        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                  f"    tw_k[{i}][tw_i] = (tw_y[tw_i] - tw_w[tw_i]) / {g_name};",
+                  "}"]
+    terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
+             for j, v in step.update_f]
+    inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+              f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+    return decl, inner
+
+
+def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
+    step, method = w.step, w.step.method
+    s, nx, h = method.stages, w.model.nx, step.h
+    size = s * nx
+    decl = [f"{w.real_t} tw_z[{size}];", f"{w.real_t} tw_f[{s}][{w.nx}];",
+            f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_r[{size}];"]
+    inner = [f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{", f"    tw_z[tw_i] = {w.zero};", "}"]
+    times = [w.time(method.c[p] * h, f"C{p + 1}H") for p in range(s)]
+    residual = []
+    for p in range(s):
+        residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                     f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
+                     f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
+    for p in range(s):
+        terms = [f"{w.const(f'A{p + 1}{q + 1}H', h * method.a[p][q], f'a{p + 1}{q + 1}*h')}"
+                 f" * tw_f[{q}][tw_i]" for q in range(s) if method.a[p][q] != 0]
+        residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                     f"    tw_r[{p * nx}U + tw_i] = ({_sum(terms) or w.zero}) - "
+                     f"tw_z[{p * nx}U + tw_i];", "}"]
+    residual.append(solver.call("tw_r"))
+    inner += solver.factor(None)
+    if step.linear:
+        inner.append("/* f is linear in x: one Newton step from Z = 0 is exact */")
+        inner += residual
+        inner += [f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{", "    tw_z[tw_i] = tw_r[tw_i];", "}"]
+    else:
+        decl += [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
+                 "uint32_t tw_done;"]
+        inner = _scale_lines(w) + inner
+        inner += _newton_loop(w, residual, size, "tw_z", per_state=True)
+    inner.append("/* update */")
+    if step.update_z:
+        terms = [f"{w.const(f'D{i + 1}', d, f'd{i + 1} (b^T A^-1)')} * tw_z[{i * nx}U + tw_i]"
+                 for i, d in step.update_z]
+        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                  f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+    else:
+        for p, _ in step.update_f:
+            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                      f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
+                      f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
+        terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_f[{j}][tw_i]"
+                 for j, v in step.update_f]
+        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                  f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+    return decl, inner
+
+
+def _rosenbrock_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
+    step, method = w.step, w.step.method
+    s, h = method.stages, step.h
+    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_y[{w.nx}];"]
+    if step.dfdt is not None:
+        decl.append(f"{w.real_t} tw_ft[{w.nx}];")
+    g_name = w.const("GAMMAH", method.gamma * h, "gamma*h")
+    inner = solver.factor(g_name)
+    if step.dfdt is not None:
+        inner.append(f"{w.p}_dfdt(tw_t, tw_x, tw_ctx, tw_ft);")
+    c = method.c
+    for i in range(s):
+        inner.append(f"/* stage {i + 1} */")
+        terms = [f"{w.const(f'ALPHA{i + 1}{j + 1}H', h * method.alpha[i][j], f'alpha{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.alpha[i][j] != 0]
+        source = "tw_x"
+        if terms:
+            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                      f"    tw_y[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+            source = "tw_y"
+        inner.append(f"{w.p}_rates({w.time(c[i] * h, f'C{i + 1}H')}, {source}, tw_ctx, tw_k[{i}]);")
+        extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', method.coupling[i][j], f'coupling{i + 1}{j + 1}')}"
+                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.coupling[i][j] != 0]
+        if step.dfdt is not None and method.time[i] != 0:
+            extra.append(f"{w.const(f'TIME{i + 1}H', method.time[i] * h, f'time{i + 1}*h')}"
+                         " * tw_ft[tw_i]")
+        if extra:
+            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+                      f"    tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + ({_sum(extra)});", "}"]
+        inner.append(solver.call(f"tw_k[{i}]"))
+    terms = [f"{w.const(f'B{j + 1}H', h * method.b[j], f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
+             for j in range(s) if method.b[j] != 0]
+    inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
+              f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+    if not any("tw_y" in line for line in inner):
+        decl = [d for d in decl if not d.startswith(f"{w.real_t} tw_y[")]
+    return decl, inner
+
+
+def _exact_body(w: _Writer) -> tuple[list[str], list[str]]:
+    ad, bd, ed = w.step.propagator
+    model = w.model
+    lit = w.printer.literal
+    inner = []
+    for i in range(model.nx):
+        terms = [f"{lit(v)} * tw_x[{j}]" for j, v in enumerate(ad[i]) if v != 0]
+        terms += [f"{lit(v)} * tw_ctx->{u.name}" for u, v in zip(model.inputs, bd[i]) if v != 0]
+        if ed[i] != 0:
+            terms.append(lit(ed[i]))
+        inner.append(f"tw_y[{i}] = {_sum(terms) or w.zero};")
+    inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{", "    tw_x[tw_i] = tw_y[tw_i];", "}"]
+    return [f"{w.real_t} tw_y[{w.nx}];"], inner
+
+
+# ---------------------------------------------------------------------------------------------
+# The whole file
+# ---------------------------------------------------------------------------------------------
+
+def _kind_note(step: ImplicitStep, precision: str) -> str:
+    if step.scheme == EXACT:
+        return "exact zero-order-hold discretization (matrix exponential at generation time)"
+    solve = step.solve
+    how = {ELIMINATION: "straight-line sparse elimination", DENSE_LU: "dense LU with partial "
+           "pivoting", INVERSE: "iteration matrix inverted at generation time"}[solve.kind]
+    if step.scheme == LINEARLY_IMPLICIT:
+        return f"linearly implicit (Rosenbrock), one linear solve per stage, {how}"
+    if step.linear:
+        return f"{step.scheme} Runge-Kutta, model linear in x: direct solve, {how}"
+    return (f"{step.scheme} Runge-Kutta, simplified Newton (at most "
+            f"{step.newton.max_iterations} iterations, tolerance "
+            f"{step.newton.tolerance_for(precision):.3g} of each state's scale), {how}")
+
+
+def implicit_context(step: ImplicitStep, precision: str) -> dict:
+    """Context for the templates: the explicit context's layout plus the solver functions."""
+    ctx = base_context(step, precision, _kind_note(step, precision))
+    w = _Writer(step, ctx, precision)
+    model, names = step.model, w.names
+    functions = [reset_function(step, names, w.printer)]
+    if step.scheme != EXACT:  # the exact step never evaluates f
+        functions.append(rates_function(step, names, w.printer))
+    newton_loop = step.scheme in (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT) and not step.linear
+    if newton_loop:
+        ctx["defines"].append(dict(name=names.macro("NEWTON_ITERATIONS"),
+                                   value=f"{step.newton.max_iterations}U",
+                                   comment="Newton iterations per solve, at most"))
+        ctx["define_width"] = max(len(d["name"]) for d in ctx["defines"])
+        tol = step.newton.tolerance_for(precision)
+        w.constants.append(dict(
+            name=f"{w.up}_NEWTON_TOL", value=w.printer.literal(sp.Rational(repr(tol))),
+            comment=f"converged when max |correction| / scale <= {tol:.6g}"))
+    solver = None
+    if step.scheme != EXACT:
+        solver = _Solver(w, step.solve)
+        if not step.prefactored:
+            functions.append(block_function(
+                w, step.jacobian.block, "jacobian", "tw_jac",
+                f"Structural non-zeros of df/dx ({len(step.jacobian.pattern)} of "
+                f"{model.nx * model.nx}), row by row: "
+                + ", ".join(f"[{i}][{j}]" for i, j in step.jacobian.pattern) + "."))
+        if step.dfdt is not None:
+            functions.append(block_function(w, step.dfdt, "dfdt", "tw_ft",
+                                            "Explicit time derivative df/dt."))
+        factor = factor_function(w, step.solve)
+        if factor:
+            functions.append(factor)
+        functions += solve_functions(w, step.solve)
+    body_builders = {DIAGONALLY_IMPLICIT: _dirk_body, FULLY_IMPLICIT: _fully_implicit_body,
+                     LINEARLY_IMPLICIT: _rosenbrock_body}
+    if step.scheme == EXACT:
+        decl, inner = _exact_body(w)
+    else:
+        decl, inner = body_builders[step.scheme](w, solver)
+    body = [f"{names.real_t} tw_x[{w.nx}];", *decl]
+    if solver is not None:
+        if not step.prefactored:
+            body.append(f"{names.real_t} tw_jac[{len(step.jacobian.pattern)}];")
+        body += solver.declarations()
+    body.append(f"const {names.real_t} tw_t0 = tw_ctx->{model.time};")
+    if step.scheme != EXACT:
+        body.append(f"{names.real_t} tw_t = tw_t0;")
+    body += ["size_t tw_i;", "uint32_t tw_n;", ""]
+    body += load_lines(step, names)
+    body.append(f"for (tw_n = 0U; tw_n < {names.macro('SUBSTEPS')}; ++tw_n) {{")
+    prelude = []
+    if solver is not None and not step.prefactored:
+        prelude.append(f"{model.name}_jacobian(tw_t, tw_x, tw_ctx, tw_jac);")
+    inner = prelude + inner
+    if step.scheme != EXACT:
+        inner.append(f"tw_t = tw_t0 + ({names.real_t})(tw_n + 1U) * "
+                     f"{w.const('STEP', step.h, 'h')};")
+    body += ["    " + line if line else line for line in inner]
+    body.append("}")
+    body += commit_lines(step, names)
+    body.append(f"return {names.status('OK')};")
+    doc = f"One tick: {step.substeps} step(s) of {step.method.name}; the context is written only " \
+          "after every check passed."
+    functions.append(dict(doc=doc, signature=f"{names.status_t} {model.name}_advance("
+                          f"{names.ctx_t} *tw_ctx)", body=body))
+    if model.outputs:
+        functions.append(outputs_function(step, names, w.printer))
+    ctx["constants"] = _unique(w.constants)
+    ctx["constant_width"] = max((len(c["name"]) for c in ctx["constants"]), default=0)
+    ctx["functions"] = functions
+    return ctx
