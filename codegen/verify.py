@@ -2,8 +2,9 @@
 
 Three checks, each with its own verdict:
 1. cross-check: the C build and the independent Python reference of the same method agree to within
-   a rounding bound;
-2. accuracy: the C trajectory against scipy's solve_ivp at tight tolerance (reported);
+   a rounding bound, and the run finishes (no non-finite state);
+2. accuracy: the C trajectory against scipy's solve_ivp at tight tolerance stays within a fraction
+   of each state's scale (default 1 %);
 3. order: the empirical order of the C build (double) on the model, halving the step, matches the
    method's order to within ORDER_TOLERANCE.
 """
@@ -44,6 +45,8 @@ class CrossCheck:
     max_difference: float
     tolerance: float
     error_vs_high_accuracy: float
+    accuracy_tolerance: float
+    accurate: bool
     passed: bool
 
 
@@ -157,8 +160,26 @@ def growth_factor(model: Model, horizon: float, inputs: np.ndarray) -> float:
     return float(np.exp(min(rate * horizon, 50.0)))
 
 
+# Default accuracy target of a check: 1 % of each state's scale (its declared range, else the
+# largest magnitude it reaches); a firmware model is rarely trusted to better than that.
+DEFAULT_ACCURACY = 1e-2
+
+
+def state_scales(model: Model, exact: np.ndarray) -> np.ndarray:
+    """Per-state scale: the width of the declared range, else the largest |x| reached, else 1."""
+    scales = []
+    for i, s in enumerate(model.states):
+        if s.range and s.range[1] > s.range[0]:
+            scales.append(s.range[1] - s.range[0])
+        else:
+            peak = float(np.nanmax(np.abs(exact[:, i]))) if exact.size else 0.0
+            scales.append(peak if peak > 0 else 1.0)
+    return np.array(scales)
+
+
 def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precision: str,
-                ticks: int, inputs: np.ndarray | None = None) -> CrossCheck:
+                ticks: int, inputs: np.ndarray | None = None,
+                accuracy: float = DEFAULT_ACCURACY) -> CrossCheck:
     """Build the C and compare it tick by tick with the independent reference."""
     csource = generate(model, method, dt, substeps, precision)
     built = build(csource, model)
@@ -177,12 +198,15 @@ def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precisi
                              growth_factor(model, ticks * dt, u))
     max_diff = float(np.max(diff)) if diff.size else 0.0
     m = min(c_run.completed, exact.completed)
-    acc = float(np.max(np.abs(c_run.xs[: m + 1] - exact.xs[: m + 1]))) if m >= 0 else float("nan")
-    same_end = c_run.completed == ref.completed
-    passed = bool(same_end and np.isfinite(max_diff) and max_diff <= tol)
+    scales = state_scales(model, exact.xs[: m + 1])
+    rel = np.abs(c_run.xs[: m + 1] - exact.xs[: m + 1]) / scales
+    acc = float(np.max(rel)) if rel.size else float("nan")
+    finished = c_run.completed == ticks == ref.completed
+    accurate = bool(finished and np.isfinite(acc) and acc <= accuracy)
+    passed = bool(finished and np.isfinite(max_diff) and max_diff <= tol and accurate)
     return CrossCheck(precision=precision, ticks=ticks, completed=c_run.completed,
                       max_difference=max_diff, tolerance=tol, error_vs_high_accuracy=acc,
-                      passed=passed)
+                      accuracy_tolerance=accuracy, accurate=accurate, passed=passed)
 
 
 def order_horizon(model: Model, u: np.ndarray) -> float:
@@ -259,7 +283,7 @@ def measure_order(model: Model, method: Tableau, expected: int | None = None,
 
 def check(model: Model, method: Tableau, dt: float, substeps: int = 1,
           precisions=("float", "double"), ticks: int = 200, inputs=None, order: bool = True,
-          progress=None) -> CheckReport:
+          progress=None, accuracy: float = DEFAULT_ACCURACY) -> CheckReport:
     """Strict compile, cross-check in each precision, and the order study."""
     say = progress or (lambda msg: None)
     say("strict compile")
@@ -269,7 +293,8 @@ def check(model: Model, method: Tableau, dt: float, substeps: int = 1,
     crosses = []
     for precision in precisions:
         say(f"cross-check ({precision}): build and run {ticks} ticks")
-        crosses.append(cross_check(model, method, dt, substeps, precision, ticks, inputs))
+        crosses.append(cross_check(model, method, dt, substeps, precision, ticks, inputs,
+                                   accuracy))
     study = None
     if order:
         say("order study")

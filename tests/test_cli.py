@@ -1,0 +1,170 @@
+"""The command line through click's runner: each command, its JSON and its one-line errors."""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import pytest
+from click.testing import CliRunner
+
+from codegen.cli import main
+
+from conftest import EXAMPLES
+
+HEATER = str(EXAMPLES / "heater.toml")
+AXIS = str(EXAMPLES / "axis.toml")
+
+
+def run(*args):
+    return CliRunner().invoke(main, [str(a) for a in args])
+
+
+@pytest.mark.parametrize("command", ["emit", "check", "replay", "methods", "demo"])
+def test_every_command_has_help(command):
+    result = run(command, "--help")
+    assert result.exit_code == 0 and "Usage:" in result.output
+
+
+def test_emit_writes_both_files_and_refuses_foreign_ones(tmp_path):
+    out = tmp_path / "gen"
+    result = run("emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert sorted(p.name for p in out.iterdir()) == ["heater.c", "heater.h"]
+    (out / "heater.h").write_text("// mine\n")
+    result = run("emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", out)
+    assert result.exit_code == 1 and "--force" in result.output
+    assert (out / "heater.h").read_text() == "// mine\n"
+    result = run("emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", out, "--force")
+    assert result.exit_code == 0
+
+
+def test_emit_with_a_user_tableau(tmp_path):
+    tableau = tmp_path / "ralston.toml"
+    tableau.write_text('name = "my ralston"\nc = [0, "2/3"]\nb = ["1/4", "3/4"]\n'
+                       'a = [[0, 0], ["2/3", 0]]\n')
+    result = run("emit", HEATER, "--tableau", tableau, "--dt", "0.1", "--out", tmp_path / "o")
+    assert result.exit_code == 0, result.output
+    assert "my ralston" in (tmp_path / "o" / "heater.c").read_text()
+
+
+def test_user_tableau_with_a_wrong_stated_order_is_refused(tmp_path):
+    tableau = tmp_path / "bad.toml"
+    tableau.write_text('name = "bad"\norder = 3\nc = [0, "2/3"]\nb = ["1/4", "3/4"]\n'
+                       'a = [[0, 0], ["2/3", 0]]\n')
+    result = run("emit", HEATER, "--tableau", tableau, "--dt", "0.1", "--out", tmp_path / "o")
+    assert result.exit_code == 1 and "order conditions give 2" in result.output
+    assert not (tmp_path / "o").exists()
+
+
+def test_check_json_reports_every_verdict():
+    result = run("check", HEATER, "--method", "heun", "--dt", "0.5", "--json")
+    assert result.exit_code == 0, result.output
+    report = json.loads(result.stdout)
+    assert report["passed"] is True
+    assert {c["precision"] for c in report["cross_checks"]} == {"float", "double"}
+    assert abs(report["order"]["measured"] - 2) <= 0.15
+
+
+def test_check_text_names_each_check():
+    result = run("check", AXIS, "--method", "midpoint", "--dt", "1e-4", "--precision", "float",
+                 "--no-order")
+    assert result.exit_code == 0, result.output
+    assert "cross-check float" in result.stdout and "verdict: PASS" in result.stdout
+
+
+def test_check_fails_with_exit_1_when_the_step_is_unstable():
+    # The axis' electrical pole is about -2970/s: Euler at 1 ms has h*lambda = -2.97 < -2
+    # (forward Euler's real-axis limit, REFERENCES.md), so the run diverges.
+    result = run("check", AXIS, "--method", "euler", "--dt", "1e-3", "--precision", "double",
+                 "--ticks", "2000", "--no-order")
+    assert result.exit_code == 1
+    assert "verdict: FAIL" in result.stdout
+
+
+def test_replay_writes_one_row_per_tick_with_round_trip_values(tmp_path):
+    log = tmp_path / "log.csv"
+    log.write_text("t,duty\n" + "".join(f"{k * 0.1:.1f},{0.5 if k > 3 else 0.0}\n"
+                                        for k in range(20)))
+    out = tmp_path / "result.csv"
+    result = run("replay", HEATER, "--method", "rk4", "--dt", "0.1", "--inputs", log,
+                 "--out", out, "--precision", "double")
+    assert result.exit_code == 0, result.output
+    rows = list(csv.reader(out.open()))
+    assert rows[0] == ["t", "T", "T_surface"]
+    assert len(rows) == 1 + 21
+    assert float(rows[1][1]) == 20.0 and float(rows[-1][0]) == pytest.approx(2.0)
+    assert all(repr(float(v)) == v for row in rows[1:] for v in row)
+
+
+def test_replay_without_inputs_uses_defaults_and_steps(tmp_path):
+    out = tmp_path / "r.csv"
+    result = run("replay", AXIS, "--method", "rk4", "--dt", "1e-4", "--steps", "7", "--out", out)
+    assert result.exit_code == 0, result.output
+    assert len(out.read_text().splitlines()) == 1 + 8
+
+
+@pytest.mark.parametrize("text, fragment", [
+    ("time,duty\n0,1\n", "first column must be 't'"),
+    ("t,power\n0,1\n", "expected the columns t,duty"),
+    ("t,duty\n0,abc\n", "line 2: column 'duty': 'abc' is not a number"),
+    ("t,duty\n0,1,2\n", "line 2: 3 values"),
+    ("t,duty\n0,nan\n", "must be finite"),
+])
+def test_replay_rejects_a_bad_log_in_one_line(tmp_path, text, fragment):
+    log = tmp_path / "log.csv"
+    log.write_text(text)
+    out = tmp_path / "r.csv"
+    result = run("replay", HEATER, "--method", "rk4", "--dt", "0.1", "--inputs", log, "--out", out)
+    assert result.exit_code == 1
+    assert fragment in result.output and str(log) in result.output
+    assert not out.exists()
+
+
+def test_replay_stops_at_the_first_failed_tick(tmp_path):
+    model = tmp_path / "blow.toml"
+    model.write_text('name = "blow"\n[states]\nx = { initial = 1.0, rate = "x*x" }\n')
+    out = tmp_path / "r.csv"
+    result = run("replay", model, "--method", "euler", "--dt", "1", "--steps", "50",
+                 "--out", out, "--precision", "float")
+    assert result.exit_code == 1
+    errors = [line for line in result.output.splitlines() if "error" in line]
+    assert len(errors) == 1 and "status NONFINITE" in errors[0] and "tick " in errors[0]
+    k = int(errors[0].split("tick ")[1].split()[0])
+    assert len(out.read_text().splitlines()) == 1 + k  # header, start row, k - 1 good ticks
+
+
+def test_methods_json_lists_every_built_in():
+    result = run("methods", "--json")
+    assert result.exit_code == 0
+    rows = {r["id"]: r for r in json.loads(result.stdout)}
+    for method_id in ("euler", "midpoint", "heun", "ralston2", "kutta3", "ssprk3", "rk4",
+                      "rk4-38", "bs3", "dp5"):
+        assert rows[method_id]["kind"] == "explicit" and rows[method_id]["source"]
+    assert rows["dp5"]["order"] == 5 and rows["dp5"]["embedded_order"] == 4
+    assert rows["rk4"]["stages"] == 4
+
+
+@pytest.mark.parametrize("args, code, fragment", [
+    (["emit", HEATER, "--method", "rk5", "--dt", "0.1", "--out", "x"], 1, "unknown method"),
+    (["emit", HEATER, "--dt", "0.1", "--out", "x"], 2, "missing --method"),
+    (["emit", HEATER, "--method", "rk4", "--tableau", "t.toml", "--dt", "0.1", "--out", "x"], 2,
+     "not both"),
+    (["emit", HEATER, "--method", "rk4", "--dt", "-1", "--out", "x"], 2, "--dt"),
+    (["emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", "x", "--precision", "half"], 2,
+     "--precision"),
+])
+def test_usage_and_domain_errors(tmp_path, monkeypatch, args, code, fragment):
+    monkeypatch.chdir(tmp_path)
+    result = run(*args)
+    assert result.exit_code == code, result.output
+    assert fragment in result.output
+    assert not (tmp_path / "x").exists()
+
+
+def test_demo_runs_the_whole_job(tmp_path):
+    result = run("demo", "--out", tmp_path / "demo")
+    assert result.exit_code == 0, result.output
+    for needle in ("files written:", "axis.c", "method and tick:", "cost per tick:",
+                   "verdict: PASS"):
+        assert needle in result.stdout
