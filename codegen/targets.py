@@ -532,7 +532,8 @@ def compare_runs(host: Run, target: Run, precision: str, exact: bool) -> tuple[b
                 bad = x != y
             else:
                 vx, vy = _value(x, precision), _value(y, precision)
-                bad = not (math.isfinite(vx) and math.isfinite(vy)) and x != y or \
+                finite = math.isfinite(vx) and math.isfinite(vy)
+                bad = (x != y) if not finite else \
                     abs(vx - vy) > RELATIVE_TOLERANCE[precision] * max(scale[i], abs(vx), 1e-30)
             if bad and not first:
                 first = (f"tick {k}, value {i}: host {x:x}, target {y:x} ({ulp} ulp)")
