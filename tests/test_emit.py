@@ -108,3 +108,14 @@ def test_unused_stages_are_not_computed(axis):
     # dp5's seventh stage only feeds the embedded estimate (b7 = 0; Dormand & Prince 1980).
     source = generate(axis, builtin("dp5"), 1e-4).text("axis.c")
     assert "stage 7" not in source and "stage 6" in source
+
+
+@pytest.mark.parametrize("method_id", ["euler", "rk4", "dp5"])
+def test_one_statement_per_line(axis, method_id):
+    # Reads like hand-written firmware: a regression once joined every body line into one.
+    for name, text in generate(axis, builtin(method_id), 1e-4).files:
+        for line in text.splitlines():
+            code = re.sub(r"/\*.*?\*/", "", line)
+            if not code.lstrip().startswith("for ("):
+                assert code.count(";") <= 1, (name, line)
+        assert "\n}\n" in text or name.endswith(".h")
