@@ -119,14 +119,21 @@ def main():
 @click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), required=True,
               help="Folder to write <name>.h and <name>.c into.")
 @click.option("--force", is_flag=True, help="Replace files even if tickwright did not write them.")
+@click.option("--error-estimate", is_flag=True,
+              help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
+                   "local error estimate (methods with b_hat, such as bs3 and dp5).")
 @guarded
-def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force):
+def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
+         error_estimate):
     """Write the C files for MODEL: <name>.h and <name>.c."""
     from .pipeline import generate
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
-    csource = generate(model, method, dt, substeps, precision)
+    if error_estimate:
+        csource = generate(model, method, dt, substeps, precision, error_estimate=True)
+    else:
+        csource = generate(model, method, dt, substeps, precision)
     for path in csource.write(out_dir, force=force):
         click.echo(str(path))
 
@@ -178,9 +185,16 @@ def _print_check(report, model, method, dt, substeps) -> None:
               help="Accuracy target against solve_ivp, as a fraction of each state's scale "
                    "(its range width, else its largest magnitude).")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
+@click.option("--error-estimate", is_flag=True,
+              help="Also build <name>_advance_with_error() and check its estimate against the "
+                   "reference's embedded difference, tick by tick.")
+@click.option("--plot", "plot_dir", type=click.Path(file_okay=False, path_type=Path),
+              help="Write pictures (trajectories, convergence) into this folder.")
+@click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
+              show_default=True, help="File format of the pictures.")
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
-          tolerance, as_json):
+          tolerance, as_json, error_estimate, plot_dir, plot_format):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     Exit status 1 when any check fails.
@@ -190,13 +204,37 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
     precisions = ("float", "double") if precision == "both" else (precision,)
+    if error_estimate and getattr(method, "b_hat", None) is None:
+        raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
+                          "an embedded pair such as bs3 or dp5")
     report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
                        progress=say, accuracy=tolerance)
+    passed = report.passed
+    if error_estimate:
+        from .advise import check_error_estimate
+
+        estimates = []
+        for p in precisions:
+            say(f"error estimate ({p}): build and run {ticks} ticks")
+            estimates.append(check_error_estimate(model, method, dt, substeps, p, ticks))
+        report.extras.setdefault("lines", []).extend(e.line() for e in estimates)
+        report.extras["error_estimate"] = [dict(e.__dict__) for e in estimates]
+        passed = passed and all(e.passed for e in estimates)
+    if plot_dir:
+        from .plots import check_pictures
+
+        say(f"pictures into {plot_dir}")
+        paths = check_pictures(model, method, dt, substeps, precisions, ticks, report, plot_dir,
+                               plot_format)
+        report.extras["pictures"] = [str(p) for p in paths]
+        report.extras.setdefault("lines", []).extend(f"picture: {p}" for p in paths)
     if as_json:
         click.echo(json.dumps(report.to_dict(), indent=2, default=_json_default))
     else:
         _print_check(report, model, method, dt, substeps)
-    if not report.passed:
+        if passed != report.passed:
+            click.echo("verdict with the error estimate: FAIL")
+    if not passed:
         raise click.exceptions.Exit(1)
 
 
@@ -320,24 +358,26 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
 
 
 def method_rows(tableau_file: Path | None):
-    from .method import builtin, builtin_ids
+    """One row per method (or the tableau file's): the analysis of every method kind."""
+    from .advise import method_report
+    from .method import builtin, builtin_ids, load_tableau
 
-    tableaux = [with_order(__import__("codegen.method", fromlist=["load_tableau"]).load_tableau(
-        tableau_file))] if tableau_file else [builtin(i) for i in builtin_ids()]
+    methods = [with_order(load_tableau(tableau_file))] if tableau_file else \
+        [builtin(i) for i in builtin_ids()]
     rows = []
-    for t in tableaux:
-        row = {"id": t.id, "name": t.name, "stages": t.stages, "order": t.order,
-               "embedded_order": t.embedded_order, "kind": t.kind,
-               "explicit": t.is_explicit, "source": t.source}
-        try:
-            from .analysis import analyse
-
-            report = analyse(t)
-            row.update({k: report_value(report, k) for k in
-                        ("a_stable", "l_stable", "real_axis_limit", "imag_axis_limit")})
-        except ImportError:  # pragma: no cover
-            pass
-        rows.append(row)
+    for m in methods:
+        report = method_report(m)
+        r_inf = report.r_infinity
+        rows.append({
+            "id": m.id, "name": m.name, "stages": report.stages, "order": report.order,
+            "embedded_order": report.embedded_order, "kind": report.kind,
+            "explicit": report.kind == "explicit",
+            "a_stable": report.a_stable, "l_stable": report.l_stable,
+            "r_infinity": None if r_inf is None else float(r_inf),
+            "real_axis_limit": report_value(report, "real_axis_limit"),
+            "imag_axis_limit": report_value(report, "imag_axis_limit"),
+            "stability_function": str(report.stability.function),
+            "source": getattr(m, "source", "")})
     return rows
 
 
@@ -359,11 +399,112 @@ def methods(tableau_file, as_json):
     if as_json:
         click.echo(json.dumps(rows, indent=2, default=_json_default))
         return
-    click.echo(f"{'id':<18} {'stages':>6} {'order':>6}  {'kind':<20} name / source")
+    click.echo(f"{'id':<18} {'stages':>6} {'order':>6}  {'kind':<20} {'A':>1} {'L':>1} "
+               f"{'real axis':>10} {'imag axis':>10}  name / source")
     for r in rows:
-        order = f"{r['order']}" + (f"({r['embedded_order']})" if r["embedded_order"] else "")
-        click.echo(f"{r['id']:<18} {r['stages']:>6} {order:>6}  {r['kind']:<20} {r['name']}; "
-                   f"{r['source']}")
+        order = "-" if r["order"] is None else \
+            f"{r['order']}" + (f"({r['embedded_order']})" if r["embedded_order"] else "")
+        limit = lambda v: "unbounded" if v is None else f"{v:.4g}"
+        flag = lambda v: "y" if v else "n"
+        click.echo(f"{r['id']:<18} {r['stages']:>6} {order:>6}  {r['kind']:<20} "
+                   f"{flag(r['a_stable'])} {flag(r['l_stable'])} {limit(r['real_axis_limit']):>10} "
+                   f"{limit(r['imag_axis_limit']):>10}  {r['name']}; {r['source']}")
+    click.echo("A/L: A-stable, L-stable; axis limits: where |R(z)| <= 1 ends on the negative "
+               "real and the imaginary axis (z = h*lambda).")
+
+
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@method_options
+@click.option("--dt", type=click.FloatRange(min=0, min_open=True),
+              help="A tick period in seconds to check for the chosen --method.")
+@click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+              default=1e-3, show_default=True,
+              help="Accuracy target: largest error over the horizon as a fraction of each "
+                   "state's full scale (max |range bound|).")
+@click.option("--margin", type=click.FloatRange(min=0, max=1, min_open=True), default=0.8,
+              show_default=True, help="Use at most this fraction of the stability limit.")
+@click.option("--horizon", type=click.FloatRange(min=0, min_open=True),
+              help="Simulated seconds for the error estimates (default: two of the slowest "
+                   "time constants).")
+@click.option("--json", "as_json", is_flag=True, help="Print the advice as JSON.")
+@click.option("--plot", "plot_dir", type=click.Path(file_okay=False, path_type=Path),
+              help="Write the stability-region pictures into this folder.")
+@click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
+              show_default=True, help="File format of the pictures.")
+@guarded
+def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, as_json,
+           plot_dir, plot_format):
+    """Advise a method, tick and precision for MODEL from its eigenvalues over the envelope.
+
+    Exit status 1 when --dt is given and is unstable for the chosen method.
+    """
+    from .advise import advise as run_advice, candidates
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file) if (method_id or tableau_file) else None
+    if dt is not None and method is None:
+        raise click.UsageError("--dt needs --method NAME (or --tableau FILE) to check it against")
+    pool = candidates()
+    advice = run_advice(model, method, dt, tolerance, margin, horizon, methods=pool, progress=say)
+    if plot_dir:
+        from .plots import advice_pictures
+
+        known = {m.id: m for m in pool}
+        if method is not None:
+            known[method.id] = method
+        for path in advice_pictures(model, advice, known, plot_dir, plot_format):
+            say(f"picture: {path}")
+    if as_json:
+        click.echo(json.dumps(advice.to_dict(), indent=2, default=_json_default))
+    else:
+        _print_advice(advice)
+    if advice.requested and not advice.requested["stable"]:
+        raise click.exceptions.Exit(1)
+
+
+def _print_advice(advice) -> None:
+    seconds = lambda v: "unbounded" if v is None or not math.isfinite(v) else f"{v:.4g}"
+    eig = advice.eigenvalues
+    click.echo(f"{advice.model}: {len(eig)} distinct eigenvalue(s) over {advice.points} "
+               f"operating point(s)" + (f" ({', '.join(advice.ranged)} ranged)"
+                                        if advice.ranged else " (no ranges: initial point)"))
+    if len(eig):
+        fastest = eig[np.argmax(np.abs(eig))]
+        click.echo(f"  fastest eigenvalue {fastest.real:.4g}{fastest.imag:+.4g}j 1/s; horizon "
+                   f"{advice.horizon:.4g} s; tolerance {advice.tolerance:g} of full scale; "
+                   f"margin {advice.margin:g}")
+    click.echo(f"  {'method':<18} {'kind':<20} {'max stable dt':>13} {'dt':>10} "
+               f"{'error':>9} {'ops/step':>8} {'ops/s':>10}")
+    for r in advice.methods:
+        err = r.accuracy.global_error if (r.accuracy and r.dt) else None
+        cost = r.cost_per_second
+        click.echo(f"  {r.id:<18} {r.kind:<20} {seconds(r.max_stable_dt):>13} "
+                   f"{'-' if r.dt is None else f'{r.dt:g}':>10} "
+                   f"{'-' if err is None else f'{err:.2g}':>9} {r.ops_per_step:>8} "
+                   f"{'-' if cost is None else f'{cost:.3g}':>10}"
+                   + (f"  ({r.note})" if r.note else ""))
+    if advice.chosen:
+        click.echo(f"chosen method {advice.chosen}: max stable dt "
+                   f"{seconds(advice.chosen_max_stable_dt)} s")
+    if advice.requested:
+        q = advice.requested
+        verdict = "stable" if q["stable"] else "UNSTABLE"
+        text = f"requested dt {q['dt']:g} s with {q['method']}: {verdict}"
+        if q.get("global_error") is not None:
+            text += (f", estimated error {q['global_error']:.2g} of full scale, "
+                     f"{q['precision']} precision")
+        click.echo(text)
+    if advice.recommended:
+        r = advice.recommended
+        click.echo(f"recommended: {r['method']} at dt = {r['dt']:g} s in {r['precision']}")
+    if advice.precision:
+        click.echo(f"precision: {advice.precision['note']}")
+    if any(r.cost_note != "counted" for r in advice.methods):
+        click.echo("ops/step: counted on the generated step for explicit methods; other kinds "
+                   "are estimated (LU 2/3 n^3, solve 2 n^2, Newton iterations as measured)")
+    for w in advice.warnings:
+        click.echo(f"warning: {w}", err=True)
 
 
 DEMO_MODEL = "axis.toml"

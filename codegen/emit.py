@@ -352,18 +352,82 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
     body.append(f"return {names.status('OK')};")
     if len(step.stages) == 1 or all(not s.terms for s in step.stages):
         body = [line for line in body if not line.startswith(f"{names.real_t} tw_y[")]
+    advance = [dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name}, stages kept as "
+                        "arrays.",
+                    signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
+                    body=body)]
+    if step.error_weights:
+        advance = error_estimate_functions(step, names, printer, constants, body, slot, ctx)
     ctx["constants"] = _unique(constants)
     ctx["constant_width"] = max((len(c["name"]) for c in ctx["constants"]), default=0)
     ctx["functions"] = [
         reset_function(step, names, printer),
         rates_function(step, names, printer),
-        dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name}, stages kept as arrays.",
-             signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
-             body=body),
+        *advance,
     ]
     if model.outputs:
         ctx["functions"].append(outputs_function(step, names, printer))
     return ctx
+
+
+def error_scale(state) -> sp.Rational:
+    """Full scale of a state for the run-time error estimate: max |range bound|, else 1."""
+    if state.range and max(abs(state.range[0]), abs(state.range[1])) > 0:
+        return sp.Rational(repr(float(max(abs(state.range[0]), abs(state.range[1])))))
+    return sp.Integer(1)
+
+
+def error_estimate_functions(step: StepProgram, names: Names, printer: Printer, constants: list,
+                             body: list[str], slot: dict, ctx: dict) -> list[dict]:
+    """advance_with_error (the step plus the embedded error estimate) and advance calling it.
+
+    The estimate of one step is e_i = h sum_j (b_j - b_hat_j) k_j[i], the difference between the
+    solution and its embedded lower-order companion (HNW I, section II.4, from memory); err is
+    the largest |e_i| / S_i over the states and the substeps of the tick, with S_i the state's
+    full scale (max |range bound|, or 1 in the state's unit without a range).
+    """
+    model, up, nx = step.model, names.upper, names.macro("NX")
+    weights = [coefficient(constants, f"{up}_ERR_W{i + 1}", 1 / error_scale(s), printer,
+                           f"1/full scale of {s.name}") for i, s in enumerate(model.states)]
+    terms = " + ".join(
+        f"{coefficient(constants, f'{up}_E{j + 1}H', v, printer, f'(b{j + 1} - b_hat{j + 1})*h')}"
+        f" * tw_k[{slot[j]}][tw_i]" for j, v in step.error_weights)
+    fabs = printer.expr(sp.Abs(sp.Symbol("tw_e"))).replace("(tw_e)", "")
+    estimate = ["/* embedded error estimate, as a fraction of each state's full scale */",
+                f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
+                f"    const {names.real_t} tw_e = {fabs}({terms}) * tw_err_weight[tw_i];",
+                "    if (tw_e > tw_err_max) {",
+                "        tw_err_max = tw_e;",
+                "    }",
+                "}"]
+    decl = [f"const {names.real_t} tw_err_weight[{nx}] = {{{', '.join(weights)}}};",
+            f"{names.real_t} tw_err_max = {printer.literal(0)};"]
+    with_error = []
+    for line in body:
+        if line == "size_t tw_i;":
+            with_error += decl
+        if line == "    /* update */":
+            with_error += ["    " + e for e in estimate]
+        if line == f"return {names.status('OK')};":
+            with_error.append("*tw_err = tw_err_max;")
+        with_error.append(line)
+    signature = (f"{names.status_t} {model.name}_advance_with_error({names.ctx_t} *tw_ctx, "
+                 f"{names.real_t} *tw_err)")
+    ctx["prototypes"].append(dict(
+        doc=f"As {model.name}_advance, and on {names.status('OK')} also set *tw_err to the local "
+            "error estimate of the tick: max over states and substeps of |h sum_j (b_j - b_hat_j) "
+            "k_j| divided by the state's full scale (max |range bound|, or 1 without a range). "
+            "It scales like h^(embedded order + 1).",
+        signature=signature))
+    return [
+        dict(doc="See the header: the step with its embedded error estimate.",
+             signature=signature, body=with_error),
+        dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name}; the error estimate "
+                 "is computed and dropped.",
+             signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
+             body=[f"{names.real_t} tw_err;",
+                   f"return {model.name}_advance_with_error(tw_ctx, &tw_err);"]),
+    ]
 
 
 def _unique(constants: list) -> list:

@@ -1,0 +1,1084 @@
+"""Step-size advice: which method, which tick and which precision suit a model.
+
+Model -> Advice. The stages:
+1. envelope: operating points from the `range` of states, inputs and parameters (corners, the
+   centre, a few interior points; the initial point when nothing has a range);
+2. eigenvalues of the Jacobian df/dx at every point;
+3. per candidate method: the largest stable step (every h*lambda in the stability region, decided
+   exactly on each ray), the error at a step size (embedded pair or step doubling per step, step
+   doubling of the whole run for the global error), and the operations per simulated second;
+4. the recommendation: the cheapest method and tick that are stable with a margin and meet the
+   tolerance, and whether float32 is enough.
+
+Error measures are relative to each state's full scale: max(|low|, |high|) of its range, or the
+largest |x| of the simulated run for a state without a range.
+
+The simulation here is a numerical model of each method in numpy (explicit stages, Newton on the
+stage equations of implicit tableaux, the linear solves of Rosenbrock methods, the matrix
+exponential of the exact method); the generated C is checked against it by the tests.
+
+References
+----------
+HNW: Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., 1993, II.4 (step doubling and embedded
+pairs, from memory). HW: Hairer & Wanner, Solving ODEs II, 2nd ed., 1996, IV.2-IV.3 (stability
+regions), IV.7 (Rosenbrock), IV.8 (simplified Newton iterations) (from memory).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import sympy as sp
+
+from . import analysis
+from .errors import CheckError, TickwrightError
+from .method import Tableau
+from .model import Model
+
+EXPLICIT = "explicit"
+LINEARLY_IMPLICIT = "linearly implicit"
+EXACT = "exact"
+
+# Default accuracy target: 0.1 % of each state's full scale over the horizon (common practice, no
+# source: a tenth of a percent of full scale is the resolution of a 10-bit converter).
+DEFAULT_TOLERANCE = 1e-3
+# Use at most this fraction of the stability limit: the eigenvalues are sampled, not bounded, and
+# nonlinear models move them (common practice, no source).
+DEFAULT_MARGIN = 0.8
+# Share of the tolerance given to truncation and to round-off each, so that together they meet it.
+TRUNCATION_SHARE = 0.5
+ROUNDOFF_SHARE = 0.5
+# The advice horizon: this many of the slowest non-zero time constants of the envelope.
+HORIZON_TIME_CONSTANTS = 2.0
+# Fewer steps than this over the horizon do not resolve the dynamics the error is measured on.
+MIN_STEPS = 10
+# More steps than this per simulated run make the advice slow; such a tick is extrapolated instead.
+MAX_STEPS = 2000
+# At most this many attempts to find the largest tick that meets the tolerance.
+MAX_ATTEMPTS = 5
+# Tick periods are rounded down to these mantissas (times a power of ten), like firmware timers.
+NICE_MANTISSAS = (1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
+# Envelope sampling: all corners up to this many, else this many corners from a Halton sequence.
+MAX_CORNERS = 64
+# Interior points (Halton sequence) besides the centre and the initial point.
+INTERIOR_POINTS = 16
+# An eigenvalue below this fraction of the largest |lambda| is rounding noise of a zero eigenvalue.
+ZERO_EIGENVALUE = 1e-9
+# Simplified Newton on implicit stages: converged when the update is below this relative size.
+NEWTON_TOL = 1e-12
+NEWTON_MAX = 50
+# Rounding units per stage and step, as the cross-check's rounding bound (verify.ULPS_PER_STAGE).
+ULPS_PER_STAGE = 4
+EPS = {"float": 2.0 ** -24, "double": 2.0 ** -53}
+
+
+# ---------------------------------------------------------------------------------------------
+# Methods of every kind
+# ---------------------------------------------------------------------------------------------
+
+def method_kind(method) -> str:
+    """explicit / diagonally implicit / fully implicit / linearly implicit / exact."""
+    return getattr(method, "kind", EXPLICIT)
+
+
+def order_tolerance(method) -> float:
+    """Order-condition tolerance for a method whose data are rounded (SDIRK3), else 0."""
+    from .analysis_data import ROUNDED_DATA_TOL
+
+    return ROUNDED_DATA_TOL.get(getattr(method, "id", ""), 0.0)
+
+
+_REPORTS: dict = {}
+
+
+def method_report(method) -> analysis.MethodReport:
+    """The analysis report of any method kind (cached per method object).
+
+    Tableaux: order conditions and stability function; linearly implicit: the Rosenbrock stability
+    function; exact: R = exp(z).
+    """
+    key = (getattr(method, "id", None), id(method))
+    if key in _REPORTS:
+        return _REPORTS[key]
+    kind = method_kind(method)
+    if isinstance(method, Tableau):
+        report = analysis.analyse(method, tol=order_tolerance(method))
+    elif kind == LINEARLY_IMPLICIT:
+        stability = analysis.rosenbrock_stability_report(method.id)
+        report = analysis.MethodReport(method.id, method.name, method.stages, method.order, None,
+                                       kind, stability, getattr(method, "source", ""))
+    elif kind == EXACT:
+        exact = analysis.analyse_exact()
+        report = analysis.MethodReport(method.id, method.name, getattr(method, "stages", 1), None,
+                                       None, kind, exact.stability, getattr(method, "source", ""))
+    else:
+        raise CheckError(f"{getattr(method, 'id', method)}: method kind '{kind}' cannot be analysed")
+    _REPORTS[key] = report
+    return report
+
+
+def _stability_coefficients(method):
+    """Exact (P, Q) coefficient lists (low to high) of R = P/Q, or None for R = exp(z)."""
+    kind = method_kind(method)
+    if isinstance(method, Tableau):
+        return analysis._tableau_polynomials(method)
+    if kind == LINEARLY_IMPLICIT:
+        return analysis._rosenbrock_coefficients(method.id)
+    return None
+
+
+def stability_function(method) -> sp.Expr:
+    """R(z) of any method kind, as a sympy expression in analysis.Z."""
+    return method_report(method).stability.function
+
+
+# ---------------------------------------------------------------------------------------------
+# Operating envelope and eigenvalues
+# ---------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class OperatingPoint:
+    """One point of the envelope: states x, inputs u and every parameter's value."""
+
+    x: tuple[float, ...]
+    u: tuple[float, ...]
+    parameters: tuple[tuple[str, float], ...]
+
+
+def envelope(model: Model) -> tuple[list[OperatingPoint], list[str]]:
+    """Operating points from the ranges, and the names of the ranged quantities.
+
+    The initial point (initial states, default inputs, parameter values) always comes first; with
+    ranges, the centre of the box, its corners (all when there are at most MAX_CORNERS, else a
+    Halton subset) and INTERIOR_POINTS Halton points follow.
+    """
+    base_x = [s.initial for s in model.states]
+    base_u = [u.default for u in model.inputs]
+    base_p = {p.name: float(p.value) for p in model.parameters}
+    dims = [("x", i, q) for i, q in enumerate(model.states) if q.range] + \
+        [("u", i, q) for i, q in enumerate(model.inputs) if q.range] + \
+        [("p", i, q) for i, q in enumerate(model.parameters) if q.range]
+
+    def point(fractions) -> OperatingPoint:
+        x, u, p = list(base_x), list(base_u), dict(base_p)
+        for (where, i, q), f in zip(dims, fractions):
+            value = q.range[0] + f * (q.range[1] - q.range[0])
+            if where == "x":
+                x[i] = value
+            elif where == "u":
+                u[i] = value
+            else:
+                p[q.name] = value
+        return OperatingPoint(tuple(map(float, x)), tuple(map(float, u)),
+                              tuple(sorted((k, float(v)) for k, v in p.items())))
+
+    points = [point([])]
+    d = len(dims)
+    if d:
+        points.append(point([0.5] * d))
+        if 2 ** d <= MAX_CORNERS:
+            corners = [[(k >> j) & 1 for j in range(d)] for k in range(2 ** d)]
+        else:
+            halton = _halton(d, MAX_CORNERS)
+            corners = np.round(halton).tolist()
+        points += [point(c) for c in corners]
+        interior = _halton(d, INTERIOR_POINTS)
+        points += [point(row) for row in interior]
+    names = [f"{'states' if w == 'x' else 'inputs' if w == 'u' else 'parameters'}.{q.name}"
+             for w, _, q in dims]
+    return points, names
+
+
+def _halton(d: int, n: int) -> np.ndarray:
+    """n points of the Halton sequence in [0, 1)^d (prime bases), skipping the origin.
+
+    References
+    ----------
+    Halton 1960, Numer. Math. 2 (from memory): the radical inverse of i in the k-th prime base.
+    """
+    primes, candidate = [], 2
+    while len(primes) < d:
+        if all(candidate % q for q in primes):
+            primes.append(candidate)
+        candidate += 1
+    out = np.zeros((n, d))
+    for i in range(1, n + 1):
+        for j, base in enumerate(primes):
+            value, scale, k = 0.0, 1.0 / base, i
+            while k:
+                k, digit = divmod(k, base)
+                value += digit * scale
+                scale /= base
+            out[i - 1, j] = value
+    return out
+
+
+def _jacobian_with_parameters(model: Model):
+    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
+    psyms = [p.symbol for p in model.parameters]
+    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy")
+    names = [p.name for p in model.parameters]
+
+    def jac(t, x, u, parameters: dict):
+        with np.errstate(all="ignore"):
+            return np.array(fn(t, list(x), list(u), [parameters[n] for n in names]),
+                            dtype=np.float64).reshape(model.nx, model.nx)
+
+    return jac
+
+
+def eigenvalues(model: Model, points=None) -> tuple[np.ndarray, list[str]]:
+    """Distinct eigenvalues of df/dx over the envelope (1/s), sorted, and any warnings.
+
+    Eigenvalues below ZERO_EIGENVALUE times the largest |lambda| are set to exactly 0 (a pure
+    integrator such as a position state); a point whose Jacobian is not finite is skipped.
+    """
+    points = envelope(model)[0] if points is None else points
+    jac = _jacobian_with_parameters(model)
+    found, warnings, skipped = [], [], 0
+    for pt in points:
+        J = jac(0.0, np.array(pt.x), np.array(pt.u), dict(pt.parameters))
+        if not np.all(np.isfinite(J)):
+            skipped += 1
+            continue
+        found.append(np.linalg.eigvals(J))
+    if skipped:
+        warnings.append(f"the Jacobian is not finite at {skipped} of {len(points)} operating "
+                        "points (they were skipped); check the ranges")
+    if not found:
+        raise CheckError(f"{model.source}: the Jacobian is not finite at any operating point; "
+                         "check the ranges and the initial values")
+    lam = np.concatenate(found)
+    big = float(np.max(np.abs(lam))) if lam.size else 0.0
+    lam = np.where(np.abs(lam) <= ZERO_EIGENVALUE * big, 0.0, lam)
+    lam = np.where(np.abs(lam.real) <= ZERO_EIGENVALUE * big, 1j * lam.imag, lam)
+    lam = np.where(np.abs(lam.imag) <= ZERO_EIGENVALUE * big, lam.real + 0j, lam)
+    rounded = {}
+    for v in lam:
+        key = (float(f"{v.real:.9g}"), float(f"{v.imag:.9g}"))
+        rounded.setdefault(key, complex(v))
+    values = np.array(sorted(rounded.values(), key=lambda v: (v.real, v.imag)), dtype=complex)
+    return values, warnings
+
+
+def decaying(values: np.ndarray) -> np.ndarray:
+    """The eigenvalues a stable discretization must damp (Re lambda <= 0)."""
+    return values[values.real <= 0]
+
+
+def _directions(values: np.ndarray) -> np.ndarray:
+    """One eigenvalue per ray direction, the largest: along a ray only the largest |lambda| binds."""
+    best: dict = {}
+    for v in values:
+        if v == 0:
+            continue
+        r = abs(v)
+        key = (round(v.real / r, 12), round(abs(v.imag) / r, 12))
+        if key not in best or r > abs(best[key]):
+            best[key] = v
+    return np.array(list(best.values()), dtype=complex)
+
+
+# Geometric grid of h*|lambda| for the numerical pre-filter of the ray limits.
+_RAY_GRID = np.geomspace(1e-6, 1e4, 4001)
+
+
+def max_stable_dt(method, values, margin: float = 1.0) -> float:
+    """Largest h with every h*lambda in the stability region of any method kind (math.inf if none).
+
+    A numerical scan of each ray picks the eigenvalues that could bind (within 2 % of the smallest
+    scanned limit); the limit is then decided exactly on those rays as in analysis.max_stable_dt.
+    Growing modes (Re lambda > 0) must be filtered out by the caller (see `decaying`).
+    """
+    values = _directions(np.asarray(values, dtype=complex))
+    pq = _stability_coefficients(method)
+    if pq is None or values.size == 0:
+        return math.inf
+    p, q = pq
+    if method_report(method).a_stable and np.all(values.real <= 0):
+        return math.inf
+    region = stability_function(method)
+    numeric = []
+    for lam in values:
+        z = _RAY_GRID * lam / abs(lam)
+        stable = analysis.in_stability_region(region, z)
+        bad = np.flatnonzero(~stable)
+        numeric.append(_RAY_GRID[bad[0]] / abs(lam) if bad.size else math.inf)
+    numeric = np.array(numeric)
+    finite = numeric[np.isfinite(numeric)]
+    bound = 1.02 * float(finite.min()) if finite.size else math.inf
+    candidates = [lam for lam, h in zip(values, numeric) if h <= bound or not np.isfinite(h)]
+    limit = math.inf
+    for lam in candidates[:64]:
+        poly = analysis._ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
+                                        sp.Rational(abs(float(lam.imag))))
+        h = analysis._first_sign_loss(poly)
+        if h is not None:
+            limit = min(limit, float(h))
+    return limit * margin
+
+
+def nice_floor(dt: float) -> float:
+    """Round a tick period down to a firmware-friendly value (NICE_MANTISSAS times 10^k)."""
+    if not math.isfinite(dt) or dt <= 0:
+        return dt
+    exponent = math.floor(math.log10(dt))
+    for _ in range(2):
+        for m in reversed(NICE_MANTISSAS):
+            value = float(f"{m}e{exponent}")
+            if value <= dt * (1 + 1e-12):
+                return value
+        exponent -= 1
+    return dt  # pragma: no cover - a mantissa of 1 always fits one decade down
+
+
+# ---------------------------------------------------------------------------------------------
+# Numerical model of each method kind, for the error estimates
+# ---------------------------------------------------------------------------------------------
+
+_FUNCTIONS: dict = {}
+
+
+def _model_functions(model: Model):
+    """f(t, x, u) and df/dx(t, x, u) as fast scalar functions at the parameter values.
+
+    Made once per model object; the same expressions as reference.rate_function, lambdified
+    with the math module on scalars (the advice runs many small steps).
+    """
+    entry = _FUNCTIONS.get(id(model))
+    if entry is not None and entry[0] is model:
+        return entry[1], entry[2]
+    values = {p.symbol: sp.Rational(repr(float(p.value))) for p in model.parameters}
+    args = [model.t, *model.x, *model.u]
+    rates = [e.xreplace(values) for e in model.f]
+    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x)).xreplace(values)
+    f_fn = sp.lambdify(args, rates, modules="math")
+    j_fn = sp.lambdify(args, list(J), modules="math")
+    nx = model.nx
+
+    def f(t, x, u):
+        try:
+            return np.array(f_fn(t, *x, *u), dtype=np.float64)
+        except (OverflowError, ValueError, ZeroDivisionError):
+            return np.full(nx, np.nan)
+
+    def jac(t, x, u):
+        try:
+            return np.array(j_fn(t, *x, *u), dtype=np.float64).reshape(nx, nx)
+        except (OverflowError, ValueError, ZeroDivisionError):
+            return np.full((nx, nx), np.nan)
+
+    _FUNCTIONS[id(model)] = (model, f, jac)
+    return f, jac
+
+
+class Stepper:
+    """One step of a method on the model in float64: step(t, x, u, h) -> (x_next, local_err).
+
+    local_err is the embedded difference h * sum (b_j - b_hat_j) k_j when the method has an
+    embedded pair, else None. iterations counts the Newton iterations of implicit stages.
+    """
+
+    def __init__(self, model: Model, method):
+        self.model = model
+        self.method = method
+        self.kind = method_kind(method)
+        self.f, self.jac = _model_functions(model)
+        self.iterations = 0
+        self.solves = 0
+        if isinstance(method, Tableau):
+            self.a, self.b, self.c = method.floats()
+            self.b_hat = None if method.b_hat is None else \
+                np.array([float(v) for v in method.b_hat])
+        elif self.kind == LINEARLY_IMPLICIT:
+            self.gamma = float(method.gamma)
+            self.alpha = np.array([[float(v) for v in r] for r in method.alpha])
+            self.coupling = np.array([[float(v) for v in r] for r in method.coupling])
+            self.b = np.array([float(v) for v in method.b])
+            self.time = np.array([float(v) for v in getattr(method, "time", [0] * len(self.b))])
+        elif self.kind == EXACT:
+            self.linear = linear_parts(model)
+            if self.linear is None:
+                raise CheckError(f"{model.source}: the exact method needs a model that is linear "
+                                 "in its states and inputs and does not use time")
+            self._cache: dict = {}
+
+    def step(self, t, x, u, h):
+        if self.kind == EXPLICIT:
+            return self._explicit(t, x, u, h)
+        if isinstance(self.method, Tableau):
+            return self._implicit(t, x, u, h)
+        if self.kind == LINEARLY_IMPLICIT:
+            return self._rosenbrock(t, x, u, h), None
+        return self._exact(x, u, h), None
+
+    def _explicit(self, t, x, u, h):
+        a, b, c = self.a, self.b, self.c
+        k = np.zeros((len(b), len(x)))
+        for i in range(len(b)):
+            y = x + h * (a[i, :i] @ k[:i]) if i else x
+            k[i] = self.f(t + c[i] * h, y, u)
+        err = None if self.b_hat is None else h * ((b - self.b_hat) @ k)
+        return x + h * (b @ k), err
+
+    def _implicit(self, t, x, u, h):
+        """Simplified Newton on all stages at once, Jacobian frozen at (t, x) (HW IV.8)."""
+        a, b, c = self.a, self.b, self.c
+        s, n = len(b), len(x)
+        J = self.jac(t, x, u)
+        if not np.all(np.isfinite(J)):
+            return np.full(n, np.nan), None
+        # Small systems (s * n of a few dozen): one inverse is cheaper than repeated LU solves.
+        W = np.linalg.inv(np.eye(s * n) - h * np.kron(a, J))
+        k = np.tile(self.f(t, x, u), (s, 1))
+        for it in range(NEWTON_MAX):
+            y = x + h * (a @ k)
+            g = k - np.array([self.f(t + c[i] * h, y[i], u) for i in range(s)])
+            dk = -(W @ g.reshape(-1)).reshape(s, n)
+            k = k + dk
+            self.iterations += 1
+            if np.max(np.abs(h * dk)) <= NEWTON_TOL * max(1.0, float(np.max(np.abs(x)))):
+                break
+        self.solves += 1
+        err = None if self.b_hat is None else h * ((b - self.b_hat) @ k)
+        return x + h * (b @ k), err
+
+    def _rosenbrock(self, t, x, u, h):
+        n = len(x)
+        J = self.jac(t, x, u)
+        if not np.all(np.isfinite(J)):
+            return np.full(n, np.nan)
+        W = np.linalg.inv(np.eye(n) - self.gamma * h * J)
+        dfdt = self._time_derivative(t, x, u)
+        k = []
+        for i in range(len(self.b)):
+            y = x + h * sum((self.alpha[i, j] * k[j] for j in range(i)), np.zeros(n))
+            rhs = self.f(t + h * self.alpha[i].sum(), y, u) + \
+                sum((self.coupling[i, j] * k[j] for j in range(i)), np.zeros(n)) + \
+                self.time[i] * h * dfdt
+            k.append(W @ rhs)
+        self.solves += 1
+        return x + h * sum(bi * ki for bi, ki in zip(self.b, k))
+
+    def _time_derivative(self, t, x, u):
+        if self.model.t not in set().union(*[e.free_symbols for e in self.model.f]):
+            return np.zeros(len(x))
+        d = 1e-7 * max(1.0, abs(t))
+        return (self.f(t + d, x, u) - self.f(t - d, x, u)) / (2 * d)
+
+    def _exact(self, x, u, h):
+        from scipy.linalg import expm
+
+        A, B, e = self.linear
+        key = h
+        if key not in self._cache:
+            n, m = A.shape[0], B.shape[1] + 1
+            block = np.zeros((n + m, n + m))
+            block[:n, :n] = A
+            block[:n, n:] = np.hstack([B, e[:, None]])
+            self._cache[key] = expm(block * h)
+        E = self._cache[key]
+        n = A.shape[0]
+        return E[:n, :n] @ x + E[:n, n:] @ np.concatenate([np.asarray(u, float), [1.0]])
+
+
+def linear_parts(model: Model):
+    """(A, B, e) with f = A x + B u + e at the parameter values, or None if f is not linear."""
+    baked = {p.symbol: p.value for p in model.parameters}
+    f = sp.Matrix(model.f).xreplace(baked)
+    if model.t in f.free_symbols:
+        return None
+    xs, us = sp.Matrix(model.x), sp.Matrix(model.u) if model.u else sp.zeros(0, 1)
+    A = f.jacobian(xs)
+    B = f.jacobian(us) if model.u else sp.zeros(model.nx, 0)
+    if A.free_symbols or B.free_symbols:
+        return None
+    zero = {s: 0 for s in list(model.x) + list(model.u)}
+    e = f.xreplace(zero)
+    to = lambda M: np.array(M.tolist(), dtype=np.float64).reshape(M.shape)
+    return to(A), to(B), to(e).reshape(-1)
+
+
+@dataclass(frozen=True)
+class Accuracy:
+    """Errors of one method at one tick over the horizon, relative to each state's full scale.
+
+    global_error: max over ticks and states of |x_dt - x_exact| / scale, estimated by step
+    doubling of the whole run; local_error: the largest one-step error (embedded pair or step
+    doubling per step); completed: False when the run stopped on a non-finite value.
+    """
+
+    dt: float
+    steps: int
+    global_error: float
+    local_error: float
+    local_by: str
+    completed: bool
+    newton_iterations: float | None = None
+
+
+def state_scales(model: Model, run: np.ndarray | None = None) -> np.ndarray:
+    """Full scale of each state: max |range bound|, else max |x| over a run, else 1."""
+    scales = []
+    for i, s in enumerate(model.states):
+        value = max(abs(s.range[0]), abs(s.range[1])) if s.range else 0.0
+        if value == 0 and run is not None:
+            finite = run[:, i][np.isfinite(run[:, i])]
+            value = float(np.max(np.abs(finite))) if finite.size else 0.0
+        scales.append(value if value > 0 else 1.0)
+    return np.array(scales)
+
+
+def advice_inputs(model: Model, horizon: float, dt: float, n: int) -> np.ndarray:
+    """The excitation of the advice runs, one row per tick of dt, held over the tick.
+
+    Each ranged input sweeps its range smoothly, u = low + (high - low) (0.5 + 0.4 sin(2 pi (j + 1)
+    t / horizon)) for input j, sampled at the start of each tick as firmware would; an input
+    without a range keeps its default. A smooth sweep, not a step, so that a stiff model's fast
+    modes are excited only as much as a controller's tick-to-tick changes excite them.
+    """
+    t = np.arange(n) * dt
+    u = np.zeros((n, len(model.inputs)))
+    for j, inp in enumerate(model.inputs):
+        if inp.range:
+            lo, hi = inp.range
+            u[:, j] = lo + (hi - lo) * (0.5 + 0.4 * np.sin(2 * np.pi * (j + 1) * t / horizon))
+        else:
+            u[:, j] = inp.default
+    return u
+
+
+def _simulate(stepper: Stepper, x0, inputs, dt, substeps=1):
+    n = len(inputs)
+    h = dt / substeps
+    xs = np.full((n + 1, len(x0)), np.nan)
+    xs[0] = x0
+    x = np.array(x0, float)
+    local = []
+    with np.errstate(all="ignore"):
+        for k in range(n):
+            for m in range(substeps):
+                x, err = stepper.step(k * dt + m * h, x, inputs[k], h)
+                if err is not None:
+                    local.append(np.abs(err))
+            if not np.all(np.isfinite(x)):
+                return xs, k, local
+            xs[k + 1] = x
+    return xs, n, local
+
+
+# Ticks at which the step-doubling local error is sampled (it costs three extra steps each).
+LOCAL_SAMPLES = 40
+
+
+def accuracy(model: Model, method, dt: float, horizon: float, scales=None) -> Accuracy:
+    """Estimate the errors of the method at tick dt over the horizon.
+
+    The run starts at the initial states under advice_inputs and compares n ticks of one step dt
+    with n ticks of two steps dt/2 (same inputs): for a method of order p the error of the coarse
+    run is (x_dt - x_dt/2) * 2^p / (2^p - 1) (Richardson; HNW II.4, from memory). The local error
+    is the embedded difference where the method has a pair, else the same doubling applied to
+    single steps at LOCAL_SAMPLES ticks.
+    """
+    n = max(1, int(round(horizon / dt)))
+    u = advice_inputs(model, horizon, dt, n)
+    x0 = np.array([s.initial for s in model.states], float)
+    order = getattr(method, "order", None)
+    factor = 1.0 if order is None else 2.0 ** order / (2.0 ** order - 1.0)
+    coarse = Stepper(model, method)
+    xs, done, local = _simulate(coarse, x0, u, dt)
+    if done < n:
+        return Accuracy(dt, n, math.inf, math.inf, "none", False)
+    fine = Stepper(model, method)
+    xf, done_f, _ = _simulate(fine, x0, u, dt, substeps=2)
+    if scales is None:
+        scales = state_scales(model, xf)
+    if done_f < n:
+        return Accuracy(dt, n, math.inf, math.inf, "none", False)
+    global_error = float(np.max(np.abs(xs - xf) / scales) * factor)
+    if local:
+        local_error = float(np.max(np.array(local) / scales))
+        local_by = "embedded pair"
+    else:
+        local_error, local_by = 0.0, "step doubling"
+        probe = Stepper(model, method)
+        for k in np.unique(np.linspace(0, n - 1, min(n, LOCAL_SAMPLES)).astype(int)):
+            one, _ = probe.step(k * dt, xs[k], u[k], dt)
+            half, _ = probe.step(k * dt, xs[k], u[k], dt / 2)
+            two, _ = probe.step(k * dt + dt / 2, half, u[k], dt / 2)
+            local_error = max(local_error, float(np.max(np.abs(one - two) / scales) * factor))
+    iterations = coarse.iterations / coarse.solves if coarse.solves and coarse.iterations else None
+    return Accuracy(dt, n, global_error, local_error, local_by, True, iterations)
+
+
+# ---------------------------------------------------------------------------------------------
+# Cost per simulated second
+# ---------------------------------------------------------------------------------------------
+
+def _rate_operations(model: Model) -> tuple[int, int]:
+    """Operations of one rate evaluation and of one Jacobian evaluation (after CSE)."""
+    from .cost import count_block
+    from .discretize import Block, rate_block
+    from .model import INTERNAL_PREFIX
+    from .simplify import cse_block
+
+    f_ops = count_block(cse_block(rate_block(model), INTERNAL_PREFIX + "r")).total
+    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x)).xreplace(model.baked)
+    entries = tuple((f"j{i}", e) for i, e in enumerate(J) if e != 0)
+    j_ops = count_block(cse_block(Block((), entries), INTERNAL_PREFIX + "j")).total
+    return f_ops, j_ops
+
+
+def operations_per_step(model: Model, method, newton_iterations: float | None = None):
+    """(operations of one step, how they were found).
+
+    Explicit tableaux: counted on the generated step program (cost.step_cost). Other kinds are
+    estimated from the rate and Jacobian operation counts: an LU factorization costs 2/3 n^3, a
+    solve 2 n^2 (common practice, no source), times the Newton iterations measured by the
+    numerical model (or 3 assumed when none were measured).
+    """
+    kind = method_kind(method)
+    nx = model.nx
+    if kind == EXPLICIT and isinstance(method, Tableau):
+        from .cost import step_cost
+        from .discretize import discretize
+        from .simplify import simplify
+
+        return step_cost(simplify(discretize(model, method, 1))).total, "counted"
+    f_ops, j_ops = _rate_operations(model)
+    lu = lambda n: (2 * n ** 3) // 3 + n * n
+    solve = lambda n: 2 * n * n
+    iterations = max(1, math.ceil(newton_iterations)) if newton_iterations else 3
+    if kind == EXACT:
+        nu = len(model.inputs)
+        return 2 * nx * (nx + nu + 1), "estimated: one matrix-vector product"
+    s = method.stages
+    if kind == LINEARLY_IMPLICIT:
+        ops = j_ops + lu(nx) + s * (f_ops + solve(nx) + 2 * s * nx)
+        return ops, "estimated: Jacobian, one LU, one solve per stage"
+    a = method.a
+    if kind == "diagonally implicit":
+        diagonals = {a[i][i] for i in range(s) if a[i][i] != 0}
+        implicit_stages = sum(1 for i in range(s) if a[i][i] != 0)
+        ops = j_ops + len(diagonals) * lu(nx) + (s - implicit_stages) * f_ops + \
+            implicit_stages * iterations * (f_ops + solve(nx) + 2 * s * nx) + 2 * s * nx
+        return ops, f"estimated: {iterations} Newton iteration(s) per stage"
+    n = s * nx
+    ops = j_ops + lu(n) + iterations * (s * f_ops + solve(n) + 2 * s * n) + 2 * s * nx
+    return ops, f"estimated: {iterations} Newton iteration(s) on the {n} x {n} stage system"
+
+
+# ---------------------------------------------------------------------------------------------
+# Float or double
+# ---------------------------------------------------------------------------------------------
+
+def roundoff(method, steps: int, precision: str, bound: bool = False) -> float:
+    """Accumulated round-off over `steps` steps, relative to full scale.
+
+    Each step adds at most ULPS_PER_STAGE * (stages + 1) rounding units of full scale (the budget
+    of the cross-check's rounding bound). bound=True adds them all (worst case, N units); the
+    estimate lets independent roundings add like a random walk (sqrt(N); common practice, no
+    source). On a decaying model, errors older than the horizon (two slow time constants) have
+    faded, so the horizon's steps are the ones that add up.
+    """
+    stages = max(1, getattr(method, "stages", 1))
+    per_step = ULPS_PER_STAGE * (stages + 1) * EPS[precision]
+    return per_step * (steps if bound else math.sqrt(steps))
+
+
+def precision_for(method, steps: int, tolerance: float) -> str:
+    """float when its round-off estimate fits the round-off share of the tolerance, else double."""
+    return "float" if roundoff(method, steps, "float") <= ROUNDOFF_SHARE * tolerance else "double"
+
+
+# ---------------------------------------------------------------------------------------------
+# The advice
+# ---------------------------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class MethodAdvice:
+    """One row of the advice table (times in seconds, errors relative to full scale)."""
+
+    id: str
+    name: str
+    kind: str
+    order: int | None
+    max_stable_dt: float
+    dt: float | None
+    accuracy: Accuracy | None
+    ops_per_step: int
+    cost_note: str
+    note: str = ""
+
+    @property
+    def cost_per_second(self) -> float | None:
+        return None if not self.dt else self.ops_per_step / self.dt
+
+    @property
+    def meets(self) -> bool:
+        return self.dt is not None and self.accuracy is not None and self.accuracy.completed
+
+    def to_dict(self) -> dict:
+        return dict(id=self.id, name=self.name, kind=self.kind, order=self.order,
+                    max_stable_dt=_finite(self.max_stable_dt), dt=self.dt,
+                    ops_per_step=self.ops_per_step, cost_per_second=self.cost_per_second,
+                    cost_note=self.cost_note, note=self.note,
+                    global_error=None if self.accuracy is None else _finite(
+                        self.accuracy.global_error),
+                    local_error=None if self.accuracy is None else _finite(
+                        self.accuracy.local_error),
+                    local_error_by=None if self.accuracy is None else self.accuracy.local_by)
+
+
+@dataclass(frozen=True)
+class Advice:
+    """Everything `tickwright advise` reports."""
+
+    model: str
+    tolerance: float
+    margin: float
+    horizon: float
+    points: int
+    ranged: tuple[str, ...]
+    eigenvalues: np.ndarray
+    methods: tuple[MethodAdvice, ...]
+    chosen: str | None
+    chosen_max_stable_dt: float | None
+    requested_dt: float | None
+    requested: dict | None
+    recommended: dict | None
+    precision: dict | None
+    warnings: tuple[str, ...] = field(default_factory=tuple)
+
+    def row(self, method_id: str) -> MethodAdvice | None:
+        return next((m for m in self.methods if m.id == method_id), None)
+
+    def to_dict(self) -> dict:
+        return dict(model=self.model, tolerance=self.tolerance, margin=self.margin,
+                    horizon=self.horizon, operating_points=self.points,
+                    ranged=list(self.ranged),
+                    eigenvalues=[[float(v.real), float(v.imag)] for v in self.eigenvalues],
+                    method=self.chosen, max_stable_dt=_finite(self.chosen_max_stable_dt),
+                    requested_dt=self.requested_dt, requested=self.requested,
+                    recommended=self.recommended, precision=self.precision,
+                    methods=[m.to_dict() for m in self.methods], warnings=list(self.warnings))
+
+
+def _finite(v):
+    return None if v is None or (isinstance(v, float) and not math.isfinite(v)) else v
+
+
+def default_horizon(values: np.ndarray) -> float:
+    """HORIZON_TIME_CONSTANTS of the slowest non-zero decay in the envelope (1 s if none)."""
+    rates = np.abs(values[values != 0])
+    return HORIZON_TIME_CONSTANTS / float(rates.min()) if rates.size else 1.0
+
+
+def candidates() -> list:
+    """Every built-in method, looked up at run time (implicit ones join when they are built in)."""
+    from .method import builtin, builtin_ids
+
+    return [builtin(i) for i in builtin_ids()]
+
+
+def _search_dt(model, method, dt_cap: float, horizon: float, tolerance: float, scales):
+    """The largest nice tick <= dt_cap whose estimated global error meets the truncation share."""
+    target = TRUNCATION_SHARE * tolerance
+    order = getattr(method, "order", None) or 1
+    dt = nice_floor(min(dt_cap, horizon / MIN_STEPS))
+    best, last, tried = None, None, set()
+    for _ in range(MAX_ATTEMPTS):
+        if dt in tried or horizon / dt > MAX_STEPS:
+            break
+        tried.add(dt)
+        acc = accuracy(model, method, dt, horizon, scales)
+        last = acc
+        if acc.completed and acc.global_error <= target:
+            best = acc
+            if acc.global_error == 0:
+                break
+            grow = min(4.0, 0.8 * (target / acc.global_error) ** (1.0 / order))
+            nxt = nice_floor(min(dt_cap, horizon / MIN_STEPS, dt * grow))
+            if nxt <= dt:
+                break
+        else:
+            if not acc.completed or not math.isfinite(acc.global_error):
+                shrink = 0.25
+            else:
+                shrink = min(0.8, 0.8 * (target / acc.global_error) ** (1.0 / order))
+            nxt = nice_floor(dt * shrink)
+            if best is not None and nxt <= best.dt:
+                break
+        dt = nxt
+    return best, last
+
+
+def advise(model: Model, method=None, dt: float | None = None,
+           tolerance: float = DEFAULT_TOLERANCE, margin: float = DEFAULT_MARGIN,
+           horizon: float | None = None, methods=None, progress=None) -> Advice:
+    """The step-size advice for a model (see the module docstring).
+
+    method: the method the user asked about (any kind), or None; dt: a requested tick to check;
+    methods: the candidate methods (default: every built-in method).
+    """
+    if not 0 < tolerance < 1:
+        raise CheckError(f"--tolerance: must be between 0 and 1 (a fraction of full scale), "
+                         f"got {tolerance}")
+    if not 0 < margin <= 1:
+        raise CheckError(f"--margin: must be in (0, 1], got {margin}")
+    say = progress or (lambda message: None)
+    points, ranged = envelope(model)
+    say(f"linearize at {len(points)} operating point(s)")
+    values, warnings = eigenvalues(model, points)
+    warnings = list(warnings)
+    growing = values[values.real > 0]
+    if growing.size:
+        worst = growing[np.argmax(growing.real)]
+        warnings.append(f"the model itself is unstable at some operating points (eigenvalue "
+                        f"{_fmt_complex(worst)} 1/s grows); stability limits below only cover "
+                        "its decaying modes")
+    if np.any(values == 0):
+        warnings.append("a state integrates without damping (eigenvalue 0): its truncation and "
+                        "round-off errors are not forgotten and grow over long runs")
+    damped = decaying(values)
+    horizon = horizon or default_horizon(values)
+    pool = list(candidates() if methods is None else methods)
+    if method is not None and all(m.id != method.id for m in pool):
+        pool.append(method)
+    scales = None
+    rows = []
+    for m in pool:
+        say(f"method {m.id}")
+        rows.append(_advise_method(model, m, damped, horizon, tolerance, margin, scales))
+    ok = [r for r in rows if r.meets]
+    recommended, precision = None, None
+    if ok:
+        best = min(ok, key=lambda r: (r.cost_per_second, -r.dt))
+        steps = int(round(horizon / best.dt))
+        prec = precision_for(_find(pool, best.id), steps, tolerance)
+        recommended = dict(method=best.id, dt=best.dt, precision=prec)
+        precision = _precision_report(_find(pool, best.id), best, steps, tolerance)
+    else:
+        warnings.append("no candidate method meets the tolerance within "
+                        f"{MAX_STEPS} steps over the horizon; loosen --tolerance or pass --horizon")
+    chosen = method.id if method is not None else (recommended or {}).get("method")
+    chosen_row = next((r for r in rows if r.id == chosen), None)
+    requested = None
+    if dt is not None and chosen_row is not None:
+        requested = _requested(model, _find(pool, chosen), chosen_row, dt, damped, horizon,
+                               tolerance, margin, warnings)
+    return Advice(model=model.name, tolerance=tolerance, margin=margin, horizon=horizon,
+                  points=len(points), ranged=tuple(ranged), eigenvalues=values,
+                  methods=tuple(rows), chosen=chosen,
+                  chosen_max_stable_dt=None if chosen_row is None else chosen_row.max_stable_dt,
+                  requested_dt=dt, requested=requested, recommended=recommended,
+                  precision=precision, warnings=tuple(warnings))
+
+
+def _find(pool, method_id):
+    return next(m for m in pool if m.id == method_id)
+
+
+def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> MethodAdvice:
+    kind = method_kind(m)
+    limit = max_stable_dt(m, damped)
+    note = ""
+    acc = None
+    try:
+        if kind == EXACT and linear_parts(model) is None:
+            raise CheckError("needs a model linear in states and inputs, without time")
+        if limit == 0:
+            raise CheckError("no step size is stable: an eigenvalue lies outside the region at "
+                             "every h (for example a lightly damped mode and an explicit method "
+                             "without imaginary-axis stability)")
+        best, last = _search_dt(model, m, margin * limit, horizon, tolerance, scales)
+        acc = best or last
+        if best is None:
+            if last is None:
+                note = f"needs more than {MAX_STEPS} steps over the {horizon:.3g} s horizon"
+            else:
+                note = (f"does not meet the tolerance at dt = {last.dt:.3g} s (error "
+                        f"{last.global_error:.2g}); a smaller tick needs more than "
+                        f"{MAX_STEPS} steps over the horizon")
+        dt = best.dt if best else None
+    except CheckError as exc:
+        note, dt = str(exc), None
+    except TickwrightError as exc:
+        note, dt = str(exc), None
+    iterations = acc.newton_iterations if acc is not None else None
+    try:
+        ops, cost_note = operations_per_step(model, m, iterations)
+    except TickwrightError as exc:  # pragma: no cover - every kind has an estimate
+        ops, cost_note = 0, str(exc)
+    report = method_report(m)
+    row_acc = acc if (acc is not None and dt is not None) else acc
+    return MethodAdvice(id=m.id, name=m.name, kind=kind, order=report.order, max_stable_dt=limit,
+                        dt=dt, accuracy=row_acc, ops_per_step=ops, cost_note=cost_note, note=note)
+
+
+def _requested(model, method, row, dt, damped, horizon, tolerance, margin, warnings) -> dict:
+    limit = row.max_stable_dt
+    stable = dt <= limit
+    out = dict(method=method.id, dt=dt, stable=bool(stable),
+               ratio_to_limit=_finite(dt / limit) if limit > 0 else None)
+    if not stable:
+        worst = _binding(method, damped, dt)
+        where = "" if worst is None else (f"; the eigenvalue {_fmt_complex(worst)} 1/s puts "
+                                         f"h*lambda at {_fmt_complex(worst * dt)}")
+        how_far = f"{dt / limit:.3g} times" if limit > 0 else "at any h, beyond"
+        warnings.append(f"--dt {dt:g} s is unstable for {method.id}: {how_far} its stability limit "
+                        f"{limit:.4g} s{where}")
+    elif dt > margin * limit:
+        warnings.append(f"--dt {dt:g} s is within the stability limit of {method.id} "
+                        f"({limit:.4g} s) but above the {margin:g} margin")
+    if stable and horizon / dt <= MAX_STEPS:
+        acc = accuracy(model, method, dt, horizon)
+        out.update(global_error=_finite(acc.global_error), local_error=_finite(acc.local_error),
+                   local_error_by=acc.local_by, meets_tolerance=bool(
+                       acc.completed and acc.global_error <= tolerance))
+        steps = int(round(horizon / dt))
+        out.update(float_roundoff=roundoff(method, steps, "float"),
+                   precision=precision_for(method, steps, tolerance))
+        if acc.completed and acc.global_error > tolerance:
+            warnings.append(f"--dt {dt:g} s with {method.id}: estimated error "
+                            f"{acc.global_error:.2g} of full scale exceeds --tolerance "
+                            f"{tolerance:g}")
+    ops, _ = operations_per_step(model, method)
+    out["cost_per_second"] = ops / dt
+    return out
+
+
+def _binding(method, damped, dt):
+    """The eigenvalue whose h*lambda is furthest outside the region (largest |R|)."""
+    if damped.size == 0:
+        return None
+    from .analysis import Z
+
+    R = sp.lambdify(Z, stability_function(method), modules="numpy")
+    with np.errstate(all="ignore"):
+        mags = np.abs(np.asarray(R(damped * dt), dtype=complex) * np.ones(damped.shape))
+    return damped[int(np.nanargmax(mags))]
+
+
+def _precision_report(method, row: MethodAdvice, steps: int, tolerance: float) -> dict:
+    rf, rd = roundoff(method, steps, "float"), roundoff(method, steps, "double")
+    bound = roundoff(method, steps, "float", bound=True)
+    trunc = row.accuracy.global_error if row.accuracy else None
+    choice = precision_for(method, steps, tolerance)
+    if choice == "float":
+        note = (f"float32 is enough: round-off estimate {rf:.2g} of full scale over {steps} steps "
+                f"(worst case {bound:.2g}) is within {ROUNDOFF_SHARE:g} x tolerance")
+    else:
+        note = (f"float32 is not enough: its round-off estimate {rf:.2g} of full scale over "
+                f"{steps} steps exceeds {ROUNDOFF_SHARE:g} x tolerance; use double "
+                f"(estimate {rd:.2g})")
+    if trunc is not None and rf > trunc:
+        note += "; in float, round-off dominates truncation, so a smaller tick would not help"
+    return dict(float_roundoff=rf, float_roundoff_bound=bound, double_roundoff=rd,
+                truncation=trunc, choice=choice, note=note)
+
+
+def _fmt_complex(v) -> str:
+    v = complex(v)
+    if v.imag == 0:
+        return f"{v.real:.4g}"
+    return f"{v.real:.4g}{'+' if v.imag >= 0 else '-'}{abs(v.imag):.4g}j"
+
+
+def as_dict(advice: Advice) -> dict:
+    """Plain data for --json."""
+    return advice.to_dict()
+
+
+# ---------------------------------------------------------------------------------------------
+# The run-time error estimate of the generated code, checked against this module's model
+# ---------------------------------------------------------------------------------------------
+
+def embedded_estimate(model: Model, method: Tableau, t: float, x, u, dt: float,
+                      substeps: int = 1):
+    """(x after one tick, the tick's error estimate) in float64, as the generated C defines it.
+
+    The estimate is max over substeps and states of |h sum_j (b_j - b_hat_j) k_j| / S_i with S_i
+    the full scale of emit.error_scale (max |range bound|, or 1).
+    """
+    from .emit import error_scale
+
+    scales = np.array([float(error_scale(s)) for s in model.states])
+    stepper = Stepper(model, method)
+    h = dt / substeps
+    worst = 0.0
+    x = np.asarray(x, float)
+    for m in range(substeps):
+        x, err = stepper.step(t + m * h, x, u, h)
+        worst = max(worst, float(np.max(np.abs(err) / scales)))
+    return x, worst
+
+
+@dataclass(frozen=True)
+class EstimateCheck:
+    """The C's run-time error estimate against embedded_estimate, tick by tick."""
+
+    precision: str
+    ticks: int
+    max_difference: float
+    tolerance: float
+    largest_estimate: float
+    passed: bool
+
+    def line(self) -> str:
+        verdict = "ok" if self.passed else "FAIL"
+        return (f"{'error estimate ' + self.precision:<20} {verdict:<5} max |C - reference| = "
+                f"{self.max_difference:.3g} (rounding bound {self.tolerance:.3g}); largest "
+                f"estimate {self.largest_estimate:.3g} of full scale over {self.ticks} ticks")
+
+
+def check_error_estimate(model: Model, method: Tableau, dt: float, substeps: int,
+                         precision: str, ticks: int) -> EstimateCheck:
+    """Build the C with the error estimate and compare it, tick by tick, with embedded_estimate.
+
+    Each tick the reference starts from the C's own state, so only that tick's rounding counts:
+    the bound is 32 rounding units of the terms the estimate sums (sum_j |h (b_j - b_hat_j)|
+    times the largest stage rate, plus the rounding of the state carried through the Jacobian).
+    """
+    from .build import build, strict_compile
+    from .pipeline import generate
+    from .verify import as_precision, test_inputs
+
+    csource = generate(model, method, dt, substeps, precision, error_estimate=True)
+    strict_compile(csource)
+    built = build(csource, model)
+    ffi, lib = built.ffi, built.lib
+    ctx = ffi.new(f"{model.name}_ctx_t *")
+    err = ffi.new(f"{model.name}_real_t *")
+    getattr(lib, f"{model.name}_reset")(ctx)
+    advance = getattr(lib, f"{model.name}_advance_with_error")
+    u_all = as_precision(test_inputs(model, ticks), precision)
+    f, jac = _model_functions(model)
+    from .emit import error_scale
+
+    scales = np.array([float(error_scale(s)) for s in model.states])
+    weight = sum(abs(float(method.b[j] - method.b_hat[j])) for j in range(method.stages))
+    h = dt / substeps
+    worst_diff, worst_tol, largest = 0.0, 0.0, 0.0
+    passed = True
+    for k in range(ticks):
+        for j, inp in enumerate(model.inputs):
+            setattr(ctx, inp.name, float(u_all[k, j]))
+        x = np.array([getattr(ctx, s.name) for s in model.states])
+        t = float(getattr(ctx, model.time))
+        status = int(advance(ctx, err))
+        if status != 0:
+            passed = False
+            break
+        _, expected = embedded_estimate(model, method, t, x, u_all[k], dt, substeps)
+        rate = np.abs(f(t, x, u_all[k])) + np.max(np.abs(jac(t, x, u_all[k]))) * np.abs(x).max()
+        tol = float(np.max(32 * EPS[precision] * weight * h * (rate + np.abs(f(t, x, u_all[k])))
+                           / scales)) + 4 * EPS[precision] * expected
+        diff = abs(float(err[0]) - expected)
+        worst_diff, worst_tol = max(worst_diff, diff), max(worst_tol, tol)
+        largest = max(largest, expected)
+        if not diff <= tol:
+            passed = False
+    return EstimateCheck(precision, ticks, worst_diff, worst_tol, largest, passed)
