@@ -134,6 +134,22 @@ class StepPrinter(C99CodePrinter):
     _print_exp = _print_Function
     _print_log = _print_Function
 
+    def _print_Add(self, expr, order=None):
+        """Sums with every product or quotient operand in parentheses (MISRA C:2012 rule 12.1)."""
+        terms = self._as_ordered_terms(expr, order=order)
+        text = ""
+        for i, term in enumerate(terms):
+            negative = term.could_extract_minus_sign()
+            body = -term if negative else term
+            piece = self._print(body)
+            if body.is_Mul and not _enclosed(piece):
+                piece = f"({piece})"
+            if i == 0:
+                text = f"-{piece}" if negative else piece
+            else:
+                text += f" - {piece}" if negative else f" + {piece}"
+        return text
+
     def _print_sign(self, expr):
         x = self._print(expr.args[0])
         zero, one = self._lit(0), self._lit(1)
@@ -165,6 +181,19 @@ class StepPrinter(C99CodePrinter):
 
     def _print_BooleanFalse(self, expr):
         return "0"
+
+
+def _enclosed(text: str) -> bool:
+    """True when text is one parenthesized group: '(a*b)' but not '(a)*b'."""
+    if not text.startswith("("):
+        return False
+    depth = 0
+    for i, ch in enumerate(text):
+        depth += ch == "("
+        depth -= ch == ")"
+        if depth == 0:
+            return i == len(text) - 1
+    return False
 
 
 @dataclass(frozen=True)

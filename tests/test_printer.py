@@ -31,6 +31,17 @@ def test_expressions_print_in_each_precision(expr, float_text, double_text):
     assert Printer("double").expr(expr) == double_text
 
 
+@pytest.mark.parametrize("expr, text", [
+    (x - 2 * y, "x - (2.0F*y)"),
+    (-x * y + 3, "-(x*y) + 3.0F"),
+    ((x - y / 3) / y, "(x - ((0.333333343F)*y))/y"),
+    (sp.sin(x) * y + x ** 2, "(x*x) + (y*sinf(x))"),
+])
+def test_products_in_sums_are_parenthesized(expr, text):
+    # MISRA C:2012 rule 12.1: make operator precedence explicit.
+    assert Printer("float").expr(expr) == text
+
+
 def test_float_text_has_no_double_literal_or_function():
     expr = sp.sin(x) / 3 + sp.exp(-x) * sp.pi + sp.Rational(7, 10) * x ** 2 + sp.sqrt(y) + sp.E
     text = Printer("float").expr(expr)
