@@ -68,6 +68,27 @@ def step_options(fn):
     return method_options(fn)
 
 
+def implicit_options(fn):
+    """Generation options of the implicit methods (ignored by explicit ones)."""
+    fn = click.option("--linear-solve", "linear_solve", default="auto", show_default=True,
+                      type=click.Choice(["auto", "elimination", "dense-lu"]),
+                      help="Linear solves of implicit methods: straight-line sparse elimination, "
+                           "looped dense LU with partial pivoting, or chosen by cost.")(fn)
+    fn = click.option("--newton-tol", "newton_tol", type=click.FloatRange(min=0, max=1,
+                      min_open=True, max_open=True), default=None,
+                      help="Newton tolerance of implicit methods: max |correction| / state scale "
+                           "(default 2^-16 in float, 2^-40 in double).")(fn)
+    fn = click.option("--newton-iterations", "newton_iterations", type=click.IntRange(min=1),
+                      default=10, show_default=True,
+                      help="Fixed upper bound of Newton iterations per solve (implicit methods); "
+                           "more returns the NO_CONVERGENCE status.")(fn)
+    return fn
+
+
+def generation_options(newton_iterations, newton_tol, linear_solve) -> dict:
+    return dict(newton_iterations=newton_iterations, newton_tol=newton_tol, solver=linear_solve)
+
+
 def resolve_method(method_id: str | None, tableau_file: Path | None):
     from .method import builtin, load_tableau
 
@@ -122,18 +143,21 @@ def main():
 @click.option("--error-estimate", is_flag=True,
               help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
                    "local error estimate (methods with b_hat, such as bs3 and dp5).")
+@implicit_options
 @guarded
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
-         error_estimate):
+         error_estimate, newton_iterations, newton_tol, linear_solve):
     """Write the C files for MODEL: <name>.h and <name>.c."""
     from .pipeline import generate
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    options = {} if method.is_explicit else \
+        generation_options(newton_iterations, newton_tol, linear_solve)
     if error_estimate:
         csource = generate(model, method, dt, substeps, precision, error_estimate=True)
     else:
-        csource = generate(model, method, dt, substeps, precision)
+        csource = generate(model, method, dt, substeps, precision, **options)
     for path in csource.write(out_dir, force=force):
         click.echo(str(path))
 
@@ -192,9 +216,11 @@ def _print_check(report, model, method, dt, substeps) -> None:
               help="Write pictures (trajectories, convergence) into this folder.")
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
+@implicit_options
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
-          tolerance, as_json, error_estimate, plot_dir, plot_format):
+          tolerance, as_json, error_estimate, plot_dir, plot_format, newton_iterations,
+          newton_tol, linear_solve):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     Exit status 1 when any check fails.
@@ -207,8 +233,10 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
     if error_estimate and getattr(method, "b_hat", None) is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
+    options = None if method.is_explicit else \
+        generation_options(newton_iterations, newton_tol, linear_solve)
     report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
-                       progress=say, accuracy=tolerance)
+                       progress=say, accuracy=tolerance, options=options)
     passed = report.passed
     if error_estimate:
         from .advise import check_error_estimate
@@ -297,9 +325,10 @@ def format_value(v: float) -> str:
               help="Number of ticks (default: the rows of --inputs, else 100).")
 @click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
+@implicit_options
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path):
+           out_path, newton_iterations, newton_tol, linear_solve):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV."""
     from .build import build
     from .pipeline import generate
@@ -311,7 +340,9 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
     else:
         inputs = np.array([[u.default for u in model.inputs]] * (steps or 100)).reshape(
             steps or 100, len(model.inputs))
-    csource = generate(model, method, dt, substeps, precision)
+    options = {} if method.is_explicit else \
+        generation_options(newton_iterations, newton_tol, linear_solve)
+    csource = generate(model, method, dt, substeps, precision, **options)
     built = build(csource, model)
     ffi, lib = built.ffi, built.lib
     ctx = ffi.new(f"{model.name}_ctx_t *")

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from .discretize import discretize
 from .emit import CSource, emit
+from .errors import MethodError
 from .method import Tableau
 from .model import Model
 from .simplify import simplify
@@ -16,6 +17,9 @@ def generate(model: Model, method: Tableau, dt, substeps: int = 1, precision: st
     implicit_options (newton_iterations, newton_tol, solver) apply to implicit methods only.
     """
     if not method.is_explicit:
+        if error_estimate:
+            raise MethodError(f"{method.id}: --error-estimate needs an explicit embedded pair such "
+                              "as bs3 or dp5")
         return generate_implicit(model, method, dt, substeps, precision, **implicit_options)
     step = discretize(model, method, dt, substeps, error_estimate)  # Model -> StepProgram
     step = simplify(step)                                            # StepProgram -> StepProgram (CSE)

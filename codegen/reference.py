@@ -77,6 +77,10 @@ def run(model: Model, method, dt: float, substeps: int, inputs: np.ndarray,
     inputs: (n, nu) array; returns the trajectory at every tick boundary.
     """
     f = rate_function(model, parameters)
+    if stepper is None and not method.is_explicit:  # implicit, Rosenbrock, exact: own module
+        from .reference_implicit import stepper as implicit_stepper
+
+        stepper = implicit_stepper(model, method, parameters)
     if stepper is None:
         a, b, c = method.floats()
 

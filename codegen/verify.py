@@ -177,11 +177,34 @@ def state_scales(model: Model, exact: np.ndarray) -> np.ndarray:
     return np.array(scales)
 
 
+def newton_allowance(model: Model, method, precision: str, steps: int, xs: np.ndarray,
+                     options: dict | None = None) -> float:
+    """Extra |C - reference| allowed for the C's Newton stopping rule (0 when it does not iterate).
+
+    The C accepts an iterate once max_i |correction_i| / scale_i <= tol, with scale_i = the state's
+    range bound + |x_i|; the reference iterates to rounding. Each step may then differ by about one
+    last correction, tol * max_i scale_i, carried forward like rounding errors.
+    """
+    from .implicit import NewtonSpec, jacobian
+    from .implicit import state_scales as newton_scales
+
+    if method.is_explicit or method.kind not in ("diagonally implicit", "fully implicit"):
+        return 0.0
+    if jacobian(model).linear:
+        return 0.0
+    tol = NewtonSpec(tolerance=(options or {}).get("newton_tol")).tolerance_for(precision)
+    reach = np.nanmax(np.abs(xs), axis=0) if xs.size else np.zeros(model.nx)
+    return steps * tol * float(np.max(np.asarray(newton_scales(model)) + reach))
+
+
 def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precision: str,
                 ticks: int, inputs: np.ndarray | None = None,
-                accuracy: float = DEFAULT_ACCURACY) -> CrossCheck:
-    """Build the C and compare it tick by tick with the independent reference."""
-    csource = generate(model, method, dt, substeps, precision)
+                accuracy: float = DEFAULT_ACCURACY, options: dict | None = None) -> CrossCheck:
+    """Build the C and compare it tick by tick with the independent reference.
+
+    options: generation options of implicit methods (newton_iterations, newton_tol, solver).
+    """
+    csource = generate(model, method, dt, substeps, precision, **(options or {}))
     built = build(csource, model)
     u = test_inputs(model, ticks) if inputs is None else inputs
     u = as_precision(u, precision)
@@ -194,8 +217,10 @@ def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precisi
     diff = np.abs(c_run.xs[: n + 1] - ref.xs[: n + 1])
     scale = float(np.nanmax(np.abs(ref.xs[: n + 1]))) if n >= 0 else 1.0
     scale = max(scale, 1e-300)
-    tol = rounding_tolerance(model, method, precision, ticks, substeps, scale,
-                             growth_factor(model, ticks * dt, u))
+    growth = growth_factor(model, ticks * dt, u)
+    tol = rounding_tolerance(model, method, precision, ticks, substeps, scale, growth)
+    tol += newton_allowance(model, method, precision, ticks * substeps, ref.xs[: n + 1],
+                            options) * growth
     max_diff = float(np.max(diff)) if diff.size else 0.0
     m = min(c_run.completed, exact.completed)
     scales = state_scales(model, exact.xs[: m + 1])
@@ -230,18 +255,44 @@ def fitted_order(steps, errors) -> float:
     return float(-np.polyfit(np.log(np.asarray(steps, float)), np.log(np.asarray(errors)), 1)[0])
 
 
+# An exact discretization must match solve_ivp (rtol 1e-13) to this fraction of the state scale at
+# every step size: a thousand times solve_ivp's tolerance, far below any method error.
+EXACT_AGREEMENT = 1e-10
+
+
+def _exact_study(model, method, u, horizon, exact, scale, options, progress) -> OrderStudy:
+    """For an exact discretization: the error must stay at rounding level at every step size."""
+    steps = (2, 4, 8)
+    c_errors = []
+    for n in steps:
+        if progress:
+            progress(f"exactness: C build with {n} steps over {horizon:.3g} s")
+        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})), model)
+        run = run_c(built, model, np.repeat(u[None, :], n, axis=0))
+        c_errors.append(float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n
+                        else float("inf"))
+    passed = all(e <= EXACT_AGREEMENT * scale for e in c_errors)
+    return OrderStudy(None, horizon, steps, tuple(c_errors), (), None, bool(passed),
+                      "exact discretization: error at the reference's tolerance at every step "
+                      "size" if passed else "exact discretization: error above the reference's "
+                      "tolerance")
+
+
 def measure_order(model: Model, method: Tableau, expected: int | None = None,
-                  progress=None) -> OrderStudy:
+                  progress=None, options: dict | None = None) -> OrderStudy:
     """Empirical order of the C build (double) by halving the step on the model.
 
     The reference picks the levels in the asymptotic regime, then the C is built and run at
     those levels and its own errors against solve_ivp give the measured order.
+    options: generation options of implicit methods.
     """
     expected = expected or method.order
     u = constant_inputs(model)
     horizon = order_horizon(model, u)
     exact = reference.high_accuracy(model, horizon, u[None, :], rtol=1e-13).xs[-1]
     scale = max(float(np.max(np.abs(exact))), 1e-300)
+    if getattr(method, "kind", "") == "exact":
+        return _exact_study(model, method, u, horizon, exact, scale, options, progress)
     floor = ORDER_ERROR_FLOOR["double"]
     steps, ref_errors = [], []
     for level in range(1, ORDER_MAX_LEVELS + 1):
@@ -267,7 +318,8 @@ def measure_order(model: Model, method: Tableau, expected: int | None = None,
     for n in chosen:
         if progress:
             progress(f"order study: C build with {n} steps over {horizon:.3g} s")
-        built = build(generate(model, method, horizon / n, 1, "double"), model)
+        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})),
+                      model)
         run = run_c(built, model, np.repeat(u[None, :], n, axis=0))
         c_errors.append(float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n
                         else float("inf"))
@@ -283,22 +335,27 @@ def measure_order(model: Model, method: Tableau, expected: int | None = None,
 
 def check(model: Model, method: Tableau, dt: float, substeps: int = 1,
           precisions=("float", "double"), ticks: int = 200, inputs=None, order: bool = True,
-          progress=None, accuracy: float = DEFAULT_ACCURACY) -> CheckReport:
-    """Strict compile, cross-check in each precision, and the order study."""
+          progress=None, accuracy: float = DEFAULT_ACCURACY,
+          options: dict | None = None) -> CheckReport:
+    """Strict compile, cross-check in each precision, and the order study.
+
+    options: generation options of implicit methods (newton_iterations, newton_tol, solver).
+    """
     say = progress or (lambda msg: None)
     say("strict compile")
     command = ""
     for precision in precisions:
-        command = strict_compile(generate(model, method, dt, substeps, precision))
+        command = strict_compile(generate(model, method, dt, substeps, precision,
+                                          **(options or {})))
     crosses = []
     for precision in precisions:
         say(f"cross-check ({precision}): build and run {ticks} ticks")
         crosses.append(cross_check(model, method, dt, substeps, precision, ticks, inputs,
-                                   accuracy))
+                                   accuracy, options))
     study = None
     if order:
         say("order study")
-        study = measure_order(model, method, progress=say)
+        study = measure_order(model, method, progress=say, options=options)
     passed = all(c.passed for c in crosses) and (study is None or study.passed)
     return CheckReport(method=method.id, model=model.name, dt=float(dt), substeps=substeps,
                        strict_compile=command, cross_checks=tuple(crosses), order=study,
