@@ -31,8 +31,8 @@ def pixel(image, ax_box, xlim, ylim, z):
 
 
 def test_euler_region_is_the_disk_around_minus_one(tmp_path, monkeypatch):
-    # Forward Euler's region is |1 + z| <= 1 (HNW I IV.2 [mem]; REFERENCES.md): z = -0.8 + 0.45i shaded,
-    # -2.6 + 0.45i and 0.35 + 0.45i not.
+    # Forward Euler's region is |1 + z| <= 1 (HNW I IV.2 [mem]; REFERENCES.md):
+    # z = -0.8 + 0.45i is shaded, -2.6 + 0.45i and 0.35 + 0.45i are not.
     seen = {}
     import matplotlib.figure
 
