@@ -162,34 +162,35 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
         click.echo(str(path))
 
 
-def _print_check(report, model, method, dt, substeps) -> None:
+def _print_check(report, model, method, dt, substeps, passed: bool | None = None) -> None:
     click.echo(f"{model.name}: {method.name} ({method.id}), dt = {dt:g} s, {substeps} substep(s)")
-    click.echo(f"  {'strict compile':<20} ok    {report.strict_compile}")
+    click.echo(f"  {'strict compile':<24} ok    {report.strict_compile}")
     for c in report.cross_checks:
         verdict = "ok" if c.passed else "FAIL"
         same = "ok" if c.max_difference <= c.tolerance and c.completed == c.ticks else "FAIL"
-        click.echo(f"  {'cross-check ' + c.precision:<20} {same:<5} max |C - reference| = "
+        click.echo(f"  {'cross-check ' + c.precision:<24} {same:<5} max |C - reference| = "
                    f"{c.max_difference:.3g} (rounding bound {c.tolerance:.3g}) over {c.ticks} "
                    "ticks")
         verdict = "ok" if c.accurate else "FAIL"
-        click.echo(f"  {'accuracy ' + c.precision:<20} {verdict:<5} max |C - solve_ivp| = "
+        click.echo(f"  {'accuracy ' + c.precision:<24} {verdict:<5} max |C - solve_ivp| = "
                    f"{100 * c.error_vs_high_accuracy:.3g} % of the state's scale (target "
                    f"{100 * c.accuracy_tolerance:g} %)")
         if c.completed < c.ticks:
-            click.echo(f"  {'':<20}       stopped after {c.completed} ticks: a state became "
+            click.echo(f"  {'':<24}       stopped after {c.completed} ticks: a state became "
                        "non-finite (the step is unstable or the inputs are out of range)")
     o = report.order
     if o is not None:
         verdict = "ok" if o.passed else "FAIL"
         if o.measured is None:
-            click.echo(f"  {'order':<20} {verdict:<5} {o.note}")
+            click.echo(f"  {'order':<24} {verdict:<5} {o.note}")
         else:
-            click.echo(f"  {'order':<20} {verdict:<5} measured {o.measured:.2f} (expected "
+            click.echo(f"  {'order':<24} {verdict:<5} measured {o.measured:.2f} (expected "
                        f"{o.expected}) from {o.steps[0]}..{o.steps[-1]} steps over "
                        f"{o.horizon:.3g} s")
     for line in report.extras.get("lines", []):
         click.echo("  " + line)
-    click.echo("verdict: " + ("PASS" if report.passed else "FAIL"))
+    passed = report.passed if passed is None else passed
+    click.echo("verdict: " + ("PASS" if passed else "FAIL"))
 
 
 @main.command()
@@ -216,20 +217,31 @@ def _print_check(report, model, method, dt, substeps) -> None:
               help="Write pictures (trajectories, convergence) into this folder.")
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
+@click.option("--target", "target_names", multiple=True, metavar="NAME|FILE",
+              help="Also cross-compile and run on this target (see 'tickwright targets'); "
+                   "repeatable. Without --precision, the target's default precision is used.")
+@click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
+              help="A folder of your own target files, added to the shipped ones.")
 @implicit_options
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
-          tolerance, as_json, error_estimate, plot_dir, plot_format, newton_iterations,
-          newton_tol, linear_solve):
+          tolerance, as_json, error_estimate, plot_dir, plot_format, target_names, targets_dir,
+          newton_iterations, newton_tol, linear_solve):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
+    With --target, also cross-compile it for a microcontroller, run it on the emulator, compare
+    it bit for bit with the host build and report flash, stack and instructions per tick.
     Exit status 1 when any check fails.
     """
     from .verify import check as run_check
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
-    precisions = ("float", "double") if precision == "both" else (precision,)
+    targets = [load_target_arg(name, targets_dir) for name in target_names]
+    if precision == "both" and targets:
+        precisions = tuple(sorted({t.default_precision for t in targets}))
+    else:
+        precisions = ("float", "double") if precision == "both" else (precision,)
     if error_estimate and getattr(method, "b_hat", None) is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
@@ -256,14 +268,89 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
                                plot_format)
         report.extras["pictures"] = [str(p) for p in paths]
         report.extras.setdefault("lines", []).extend(f"picture: {p}" for p in paths)
+    if targets:
+        target_reports = run_targets(model, method, dt, substeps, precisions, ticks, targets,
+                                     options)
+        report.extras["targets"] = [r.to_dict() for r in target_reports]
+        report.extras.setdefault("lines", []).extend(
+            line for r in target_reports for line in target_lines(r))
+        passed = passed and all(r.passed for r in target_reports)
+        if len(target_reports) == 1:
+            # One target: its figures also at the top level of --json, for scripts.
+            only = target_reports[0].to_dict()
+            report.extras.update({k: only[k] for k in TARGET_SUMMARY_KEYS})
     if as_json:
-        click.echo(json.dumps(report.to_dict(), indent=2, default=_json_default))
+        data = report.to_dict()
+        extras = data.pop("extras")
+        data.update(extras)
+        data["passed"] = passed
+        click.echo(json.dumps(data, indent=2, default=_json_default))
     else:
-        _print_check(report, model, method, dt, substeps)
-        if passed != report.passed:
-            click.echo("verdict with the error estimate: FAIL")
+        _print_check(report, model, method, dt, substeps, passed)
     if not passed:
         raise click.exceptions.Exit(1)
+
+
+TARGET_SUMMARY_KEYS = ("matches_host", "flash_bytes", "stack_bytes", "instructions_per_tick",
+                       "double_free", "misra")
+
+
+def load_target_arg(name: str, targets_dir: Path | None):
+    from .targets import load_target
+
+    return load_target(name, targets_dir)
+
+
+def run_targets(model, method, dt, substeps, precisions, ticks, targets, options):
+    """Cross-compile, emulate and measure the generated C on each target, in each precision."""
+    from .pipeline import generate
+    from .targets import check_on_target
+
+    reports = []
+    for target in targets:
+        for p in precisions:
+            say(f"target {target.id} ({p}): cross-compile, run {ticks} ticks on the emulator")
+            csource = generate(model, method, dt, substeps, p, **(options or {}))
+            reports.append(check_on_target(csource, model, target, ticks=ticks))
+    return reports
+
+
+def target_lines(r) -> list[str]:
+    """The human summary of one target run."""
+    verdict = "ok" if r.passed else "FAIL"
+    ipt = "n/a" if r.instructions_per_tick is None else f"{r.instructions_per_tick}"
+    lines = [f"{'target ' + r.target + ' ' + r.precision:<24} {verdict:<5} "
+             f"{'bit-identical to the host' if r.matches_host and r.max_ulp == 0 else r.comparison}"
+             f"; flash {r.flash_bytes} B, stack {r.stack_bytes} B, {ipt} instructions per tick"]
+    if r.double_free is not None:
+        lines.append(f"{'':<24} {'ok' if r.double_free else 'FAIL':<5} no double-precision code "
+                     f"in the float build" + ("" if r.double_free else
+                                              f": {', '.join(r.double_symbols)}"))
+    lines.append(f"{'':<24} {'ok' if not r.misra else 'FAIL':<5} MISRA C:2012 (cppcheck): "
+                 f"{len(r.misra)} finding(s), {len(r.misra_deviations)} documented deviation(s)")
+    lines += [f"{'':<24}       {p}" for p in r.problems]
+    return lines
+
+
+@main.command("targets")
+@click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
+              help="A folder of your own target files, added to the shipped ones.")
+@click.option("--json", "as_json", is_flag=True, help="Print the targets as JSON.")
+@guarded
+def targets_command(targets_dir, as_json):
+    """List the targets: compiler, precision, emulator and cost table."""
+    from .targets import load_targets
+
+    targets = load_targets(targets_dir)
+    if as_json:
+        click.echo(json.dumps([t.to_dict() for t in targets.values()], indent=2,
+                              default=_json_default))
+        return
+    click.echo(f"{'id':<12} {'precision':<10} {'in hardware':<14} compiler / emulator")
+    for t in targets.values():
+        hw = ", ".join(t.hardware_precisions) or "none"
+        run = " ".join(t.run_command[:3])
+        click.echo(f"{t.id:<12} {t.default_precision:<10} {hw:<14} {t.cc}  {run}".rstrip())
 
 
 def _json_default(value):
