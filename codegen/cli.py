@@ -79,7 +79,7 @@ def implicit_options(fn):
                       help="Newton tolerance of implicit methods: max |correction| / state scale "
                            "(default 2^-16 in float, 2^-40 in double).")(fn)
     fn = click.option("--newton-iterations", "newton_iterations", type=click.IntRange(min=1),
-                      default=10, show_default=True,
+                      default=20, show_default=True,
                       help="Fixed upper bound of Newton iterations per solve (implicit methods); "
                            "more returns the NO_CONVERGENCE status.")(fn)
     return fn
