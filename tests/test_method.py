@@ -7,7 +7,8 @@ import pytest
 import sympy as sp
 
 from codegen.errors import MethodError
-from codegen.method import BUILTIN_TABLEAUX, EXPLICIT, builtin, builtin_ids, exact, load_tableau
+from codegen.method import (BUILTIN_TABLEAUX, EXPLICIT, Tableau, builtin, builtin_ids, exact,
+                             load_tableau)
 
 EXPLICIT_IDS = ["euler", "midpoint", "heun", "ralston2", "kutta3", "ssprk3", "rk4", "rk4-38",
                 "bs3", "dp5"]
@@ -17,7 +18,16 @@ def test_the_explicit_ids_are_exactly_the_published_list():
     assert [i for i in builtin_ids() if builtin(i).kind == EXPLICIT] == EXPLICIT_IDS
 
 
-@pytest.mark.parametrize("method_id", builtin_ids())
+TABLEAU_IDS = [i for i in builtin_ids() if isinstance(builtin(i), Tableau)]
+
+
+def test_every_builtin_is_a_tableau_or_a_named_special_kind():
+    others = {i: builtin(i).kind for i in builtin_ids() if i not in TABLEAU_IDS}
+    assert others == {"rosenbrock-euler": "linearly implicit", "ros2": "linearly implicit",
+                      "zoh-exact": "exact"}
+
+
+@pytest.mark.parametrize("method_id", TABLEAU_IDS)
 def test_row_sums_equal_c_and_weights_sum_to_one(method_id):
     t = builtin(method_id)
     for row, c in zip(t.a, t.c):

@@ -86,7 +86,7 @@ def test_check_and_advise_write_their_pictures(tmp_path):
                                   "--plot", str(tmp_path), "--json"])
     assert result.exit_code == 0, result.output
     report = json.loads(result.stdout)
-    names = sorted(p.rsplit("/", 1)[-1] for p in report["extras"]["pictures"])
+    names = sorted(p.rsplit("/", 1)[-1] for p in report["pictures"])
     assert names == ["heater-rk4-convergence.png", "heater-rk4-trajectories.png"]
     result = runner.invoke(main, ["advise", model, "--method", "rk4", "--dt", "1",
                                   "--plot", str(tmp_path), "--plot-format", "svg"])
