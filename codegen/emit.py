@@ -281,17 +281,97 @@ def load_lines(step: StepProgram, names: Names) -> list[str]:
     return [f"tw_x[{i}] = tw_ctx->{s.name};" for i, s in enumerate(step.model.states)]
 
 
-def commit_lines(step: StepProgram, names: Names) -> list[str]:
-    """Check every new state, then store: the context changes only on success."""
+# The status of the tick in every advance function: one exit point (MISRA C:2012 rule 15.5).
+STATUS_VAR = "tw_status"
+# Marker line in a list of body lines: what follows runs only while the status is still OK.
+GUARD = "\x00guard"
+
+
+def sum_of_products(terms) -> str:
+    """'c * v' terms joined by '+', each in parentheses (MISRA C:2012 rule 12.1)."""
+    return " + ".join(f"({t})" for t in terms)
+
+
+def grouped(terms) -> str:
+    """A sum of products as one operand: '(c * v)' or '((c * v) + (d * w))'."""
+    terms = list(terms)
+    text = sum_of_products(terms)
+    return text if len(terms) == 1 else f"({text})"
+
+
+def fail_lines(names: Names, condition: str, status: str) -> list[str]:
+    """Set the status on a failure; the code after the GUARD marker is then skipped."""
+    return [f"if ({condition}) {{", f"    {STATUS_VAR} = {names.status(status)};", "}", GUARD]
+
+
+def guard_segments(lines: list[str], names: Names) -> list[str]:
+    """Wrap each segment after a GUARD marker in 'if (status == OK)', flat, not nested."""
+    out: list[str] = []
+    segments: list[list[str]] = [[]]
+    for line in lines:
+        if line == GUARD:
+            segments.append([])
+        else:
+            segments[-1].append(line)
+    out += segments[0]
+    for segment in segments[1:]:
+        if segment:
+            out.append(f"if ({STATUS_VAR} == {names.status('OK')}) {{")
+            out += ["    " + line if line else line for line in segment]
+            out.append("}")
+    return out
+
+
+def commit_lines(step: StepProgram, names: Names, may_have_failed: bool = True) -> list[str]:
+    """Check every new state, then store: the context changes only on success.
+
+    may_have_failed: whether the substeps can already have set a failure status.
+    """
     model = step.model
-    lines = [f"for (tw_i = 0U; tw_i < {names.macro('NX')}; ++tw_i) {{",
-             "    if (!isfinite(tw_x[tw_i])) {",
-             f"        return {names.status('NONFINITE')};",
+    ok = f"{STATUS_VAR} == {names.status('OK')}"
+    check = [f"for (tw_i = 0U; tw_i < {names.macro('NX')}; ++tw_i) {{",
+             "    if (isfinite(tw_x[tw_i]) == 0) {",
+             f"        {STATUS_VAR} = {names.status('NONFINITE')};",
              "    }",
              "}"]
-    lines += [f"tw_ctx->{s.name} = tw_x[{i}];" for i, s in enumerate(model.states)]
-    lines.append(f"tw_ctx->{model.time} = tw_t0 + {names.macro('DT')};")
+    if may_have_failed:
+        check = [f"if ({ok}) {{", *["    " + line for line in check], "}"]
+    lines = check + [f"if ({ok}) {{"]
+    lines += [f"    tw_ctx->{s.name} = tw_x[{i}];" for i, s in enumerate(model.states)]
+    lines += [f"    tw_ctx->{model.time} = tw_t0 + {names.macro('DT')};", "}"]
     return lines
+
+
+def advance_body(step, names: Names, decl: list[str], inner: list[str], step_name: str | None,
+                 on_success: tuple[str, ...] = ()) -> list[str]:
+    """The advance function around one substep's lines: load, loop, check, commit, one return.
+
+    step_name: the constant holding h, or None when the substep does not use time;
+    on_success: extra lines run with the commit, only when every check passed.
+    """
+    model = step.model
+    ok = names.status("OK")
+    body = [f"{names.real_t} tw_x[{names.macro('NX')}];", *decl,
+            f"{names.status_t} {STATUS_VAR} = {ok};",
+            f"const {names.real_t} tw_t0 = tw_ctx->{model.time};"]
+    if step_name:
+        body.append(f"{names.real_t} tw_t = tw_t0;")
+    body += ["size_t tw_i;", "uint32_t tw_n;", ""]
+    body += load_lines(step, names)
+    may_fail = GUARD in inner
+    running = f"(tw_n < {names.macro('SUBSTEPS')}) && ({STATUS_VAR} == {ok})" if may_fail \
+        else f"tw_n < {names.macro('SUBSTEPS')}"
+    body.append(f"for (tw_n = 0U; {running}; ++tw_n) {{")
+    inner = guard_segments(inner, names)
+    if step_name:
+        inner += ["const uint32_t tw_steps = tw_n + 1U;",
+                  f"tw_t = tw_t0 + (({names.real_t})tw_steps * {step_name});"]
+    body += ["    " + line if line else line for line in inner]
+    body.append("}")
+    commit = commit_lines(step, names, may_fail)
+    body += commit[:-1] + ["    " + line for line in on_success] + commit[-1:]
+    body.append(f"return {STATUS_VAR};")
+    return body
 
 
 def coefficient(constants: list, name: str, value, printer: Printer, note: str) -> str:
@@ -307,57 +387,47 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
     up = names.upper
     constants: list = []
     nx = names.macro("NX")
-    body = [f"{names.real_t} tw_x[{nx}];",
-            f"{names.real_t} tw_y[{nx}];",
-            f"{names.real_t} tw_k[{len(step.stages)}][{nx}];",
-            f"const {names.real_t} tw_t0 = tw_ctx->{model.time};",
-            f"{names.real_t} tw_t = tw_t0;",
-            "size_t tw_i;",
-            "uint32_t tw_n;",
-            ""]
-    body += load_lines(step, names)
-    body.append(f"for (tw_n = 0U; tw_n < {names.macro('SUBSTEPS')}; ++tw_n) {{")
+    needs_y = any(stage.terms for stage in step.stages)
+    decl = ([f"{names.real_t} tw_y[{nx}];"] if needs_y else []) + \
+        [f"{names.real_t} tw_k[{len(step.stages)}][{nx}];"]
     slot = {stage.index: n for n, stage in enumerate(step.stages)}
     inner: list[str] = []
     for n, stage in enumerate(step.stages):
         i = stage.index
+        inner.append(f"/* stage {i + 1}: c = {stage.c} */")
+        time = "tw_t" if stage.time_offset == 0 else \
+            f"tw_t + {coefficient(constants, f'{up}_C{i + 1}H', stage.time_offset, printer, f'c{i + 1}*h')}"
         if not stage.terms:
-            inner.append(f"/* stage {i + 1}: c = {stage.c} */")
-            time = "tw_t" if stage.time_offset == 0 else \
-                f"tw_t + {coefficient(constants, f'{up}_C{i + 1}H', stage.time_offset, printer, f'c{i + 1}*h')}"
             inner.append(f"{model.name}_rates({time}, tw_x, tw_ctx, tw_k[{n}]);")
             continue
-        inner.append(f"/* stage {i + 1}: c = {stage.c} */")
-        terms = " + ".join(
+        terms = grouped(
             f"{coefficient(constants, f'{up}_A{i + 1}{j + 1}H', v, printer, f'a{i + 1}{j + 1}*h')}"
             f" * tw_k[{slot[j]}][tw_i]" for j, v in stage.terms)
         inner += [f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
-                  f"    tw_y[tw_i] = tw_x[tw_i] + ({terms});",
+                  f"    tw_y[tw_i] = tw_x[tw_i] + {terms};",
                   "}"]
-        time = "tw_t" if stage.time_offset == 0 else \
-            f"tw_t + {coefficient(constants, f'{up}_C{i + 1}H', stage.time_offset, printer, f'c{i + 1}*h')}"
         inner.append(f"{model.name}_rates({time}, tw_y, tw_ctx, tw_k[{n}]);")
-    terms = " + ".join(
+    estimate, estimate_decl = [], []
+    if step.error_weights:
+        estimate, estimate_decl = error_estimate_lines(step, names, printer, constants, slot)
+    terms = grouped(
         f"{coefficient(constants, f'{up}_B{j + 1}H', v, printer, f'b{j + 1}*h')}"
         f" * tw_k[{slot[j]}][tw_i]" for j, v in step.weights)
+    inner += estimate
     inner += ["/* update */",
               f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + ({terms});",
-              "}",
-              f"tw_t = tw_t0 + ({names.real_t})(tw_n + 1U) * "
-              f"{coefficient(constants, f'{up}_STEP', step.h, printer, 'h')};"]
-    body += ["    " + line if line else line for line in inner]
-    body.append("}")
-    body += commit_lines(step, names)
-    body.append(f"return {names.status('OK')};")
-    if len(step.stages) == 1 or all(not s.terms for s in step.stages):
-        body = [line for line in body if not line.startswith(f"{names.real_t} tw_y[")]
-    advance = [dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name}, stages kept as "
-                        "arrays.",
-                    signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
-                    body=body)]
+              f"    tw_x[tw_i] = tw_x[tw_i] + {terms};",
+              "}"]
+    step_name = coefficient(constants, f"{up}_STEP", step.h, printer, "h")
+    doc = f"One tick: {step.substeps} step(s) of {step.method.name}, stages kept as arrays."
+    signature = f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)"
     if step.error_weights:
-        advance = error_estimate_functions(step, names, printer, constants, body, slot, ctx)
+        body = advance_body(step, names, decl + estimate_decl, inner, step_name,
+                            on_success=("*tw_err = tw_err_max;",))
+        advance = error_estimate_functions(step, names, body, ctx)
+    else:
+        advance = [dict(doc=doc, signature=signature,
+                        body=advance_body(step, names, decl, inner, step_name))]
     ctx["constants"] = _unique(constants)
     ctx["constant_width"] = max((len(c["name"]) for c in ctx["constants"]), default=0)
     ctx["functions"] = [
@@ -377,9 +447,9 @@ def error_scale(state) -> sp.Rational:
     return sp.Integer(1)
 
 
-def error_estimate_functions(step: StepProgram, names: Names, printer: Printer, constants: list,
-                             body: list[str], slot: dict, ctx: dict) -> list[dict]:
-    """advance_with_error (the step plus the embedded error estimate) and advance calling it.
+def error_estimate_lines(step: StepProgram, names: Names, printer: Printer, constants: list,
+                         slot: dict) -> tuple[list[str], list[str]]:
+    """Lines of one substep that update the embedded error estimate, and their declarations.
 
     The estimate of one step is e_i = h sum_j (b_j - b_hat_j) k_j[i], the difference between the
     solution and its embedded lower-order companion (HNW I, section II.4, from memory); err is
@@ -389,7 +459,7 @@ def error_estimate_functions(step: StepProgram, names: Names, printer: Printer, 
     model, up, nx = step.model, names.upper, names.macro("NX")
     weights = [coefficient(constants, f"{up}_ERR_W{i + 1}", 1 / error_scale(s), printer,
                            f"1/full scale of {s.name}") for i, s in enumerate(model.states)]
-    terms = " + ".join(
+    terms = sum_of_products(
         f"{coefficient(constants, f'{up}_E{j + 1}H', v, printer, f'(b{j + 1} - b_hat{j + 1})*h')}"
         f" * tw_k[{slot[j]}][tw_i]" for j, v in step.error_weights)
     fabs = printer.expr(sp.Abs(sp.Symbol("tw_e"))).replace("(tw_e)", "")
@@ -402,15 +472,13 @@ def error_estimate_functions(step: StepProgram, names: Names, printer: Printer, 
                 "}"]
     decl = [f"const {names.real_t} tw_err_weight[{nx}] = {{{', '.join(weights)}}};",
             f"{names.real_t} tw_err_max = {printer.literal(0)};"]
-    with_error = []
-    for line in body:
-        if line == "size_t tw_i;":
-            with_error += decl
-        if line == "    /* update */":
-            with_error += ["    " + e for e in estimate]
-        if line == f"return {names.status('OK')};":
-            with_error.append("*tw_err = tw_err_max;")
-        with_error.append(line)
+    return estimate, decl
+
+
+def error_estimate_functions(step: StepProgram, names: Names, body: list[str],
+                             ctx: dict) -> list[dict]:
+    """The step with its error estimate as a static function, and the two public entries."""
+    model = step.model
     signature = (f"{names.status_t} {model.name}_advance_with_error({names.ctx_t} *tw_ctx, "
                  f"{names.real_t} *tw_err)")
     ctx["prototypes"].append(dict(
@@ -419,14 +487,19 @@ def error_estimate_functions(step: StepProgram, names: Names, printer: Printer, 
             "k_j| divided by the state's full scale (max |range bound|, or 1 without a range). "
             "It scales like h^(embedded order + 1).",
         signature=signature))
+    tick = f"{model.name}_tick"
     return [
-        dict(doc="See the header: the step with its embedded error estimate.",
-             signature=signature, body=with_error),
-        dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name}; the error estimate "
-                 "is computed and dropped.",
+        dict(doc=f"One tick: {step.substeps} step(s) of {step.method.name} with the embedded "
+                 "error estimate.",
+             signature=f"static {names.status_t} {tick}({names.ctx_t} *tw_ctx, "
+                       f"{names.real_t} *tw_err)",
+             body=body),
+        dict(doc="See the header.", signature=signature,
+             body=[f"return {tick}(tw_ctx, tw_err);"]),
+        dict(doc="See the header; the error estimate is computed and dropped.",
              signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
              body=[f"{names.real_t} tw_err;",
-                   f"return {model.name}_advance_with_error(tw_ctx, &tw_err);"]),
+                   f"return {tick}(tw_ctx, &tw_err);"]),
     ]
 
 

@@ -12,8 +12,9 @@ from __future__ import annotations
 
 import sympy as sp
 
-from .emit import (CSource, Names, _unique, base_context, block_lines, coefficient, commit_lines,
-                   finish, free_names, load_lines, outputs_function, reset_function,
+from .emit import (GUARD, STATUS_VAR, CSource, Names, _unique, advance_body, base_context,
+                   block_lines, coefficient, fail_lines, finish, free_names, grouped,
+                   outputs_function, reset_function, sum_of_products,
                    rates_function, unpack_lines)
 from .errors import EmitError
 from .implicit import DENSE_LU, ELIMINATION, EXACT, G, INVERSE, ImplicitStep, LinearSolve
@@ -90,8 +91,8 @@ def _entry_value(w: _Writer, entry, solve: LinearSolve, nx: int) -> str:
         terms.append(f"{name} * tw_jac[{k}]")
     if not terms:
         return w.one if entry.one else w.zero
-    total = " + ".join(terms)
-    return f"{w.one} - ({total})" if entry.one else f"-({total})"
+    total = grouped(terms)
+    return f"{w.one} - {total}" if entry.one else f"-{total}"
 
 
 def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
@@ -101,10 +102,10 @@ def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
     nx = w.model.nx
     n = solve.size
     scale_arg = f"const {w.real_t} tw_g, " if solve.needs_scale else ""
-    fail = ["    return 1;", "}"]
     if solve.kind == ELIMINATION:
         slot = solve.slot()
-        body = [f"/* assemble the {len(solve.entries)} structural non-zeros; fill-in starts at 0 */"]
+        body = ["int tw_bad = 0;", "",
+                f"/* assemble the {len(solve.entries)} structural non-zeros; fill-in starts at 0 */"]
         given = {(e.row, e.col): e for e in solve.entries}
         for rc in solve.filled:
             value = _entry_value(w, given[rc], solve, nx) if rc in given else w.zero
@@ -114,16 +115,21 @@ def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
         filled = set(solve.filled)
         for k in solve.order:
             pk = slot[(k, k)]
-            body += [f"if (!({w.fabs}(tw_lu[{pk}]) > {w.zero}) || !isfinite(tw_lu[{pk}])) {{",
-                     *fail]
             below = [i for i in range(n) if (i, k) in filled and position[i] > position[k]]
             right = [j for j in range(n) if (k, j) in filled and position[j] > position[k]]
+            steps = []
             for i in below:
-                body.append(f"tw_lu[{slot[(i, k)]}] = tw_lu[{slot[(i, k)]}] / tw_lu[{pk}];")
+                steps.append(f"tw_lu[{slot[(i, k)]}] = tw_lu[{slot[(i, k)]}] / tw_lu[{pk}];")
                 for j in right:
-                    body.append(f"tw_lu[{slot[(i, j)]}] = tw_lu[{slot[(i, j)]}] - "
-                                f"tw_lu[{slot[(i, k)]}] * tw_lu[{slot[(k, j)]}];")
-        body.append("return 0;")
+                    steps.append(f"tw_lu[{slot[(i, j)]}] = tw_lu[{slot[(i, j)]}] - "
+                                 f"(tw_lu[{slot[(i, k)]}] * tw_lu[{slot[(k, j)]}]);")
+            bad_pivot = f"!({w.fabs}(tw_lu[{pk}]) > {w.zero}) || (isfinite(tw_lu[{pk}]) == 0)"
+            if k != solve.order[0]:
+                bad_pivot = f"(tw_bad == 0) && ({bad_pivot})"
+            body += [f"if ({bad_pivot}) {{", "    tw_bad = 1;", "}"]
+            if steps:
+                body += ["if (tw_bad == 0) {", *["    " + line for line in steps], "}"]
+        body.append("return tw_bad;")
         return dict(doc=f"Assemble and factor the {n} x {n} iteration matrix by straight-line "
                     "elimination along its sparsity pattern. Returns 1 on a zero or non-finite "
                     "pivot.",
@@ -131,43 +137,44 @@ def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
                               f"{scale_arg}{w.real_t} *restrict tw_lu)",
                     body=body)
     size = w.raw("NSOLVE", f"{n}U", "size of the linear system of one solve")
-    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", "size_t tw_p;",
-            f"{w.real_t} tw_big;", f"{w.real_t} tw_m;", "",
-            f"for (tw_i = 0U; tw_i < {size} * {size}; ++tw_i) {{",
+    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", f"{w.real_t} tw_m;",
+            "int tw_bad = 0;", "",
+            f"for (tw_i = 0U; tw_i < ({size} * {size}); ++tw_i) {{",
             f"    tw_lu[tw_i] = {w.zero};", "}"]
     body += [f"tw_lu[{e.row * n + e.col}] = {_entry_value(w, e, solve, nx)};"
              for e in solve.entries]
     body += [
-        f"for (tw_k = 0U; tw_k < {size}; ++tw_k) {{",
-        "    tw_p = tw_k;",
-        f"    tw_big = {w.fabs}(tw_lu[tw_k * {size} + tw_k]);",
+        f"for (tw_k = 0U; (tw_k < {size}) && (tw_bad == 0); ++tw_k) {{",
+        "    size_t tw_p = tw_k;",
+        f"    {w.real_t} tw_big = {w.fabs}(tw_lu[(tw_k * {size}) + tw_k]);",
         f"    for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
-        f"        if ({w.fabs}(tw_lu[tw_i * {size} + tw_k]) > tw_big) {{",
-        f"            tw_big = {w.fabs}(tw_lu[tw_i * {size} + tw_k]);",
+        f"        if ({w.fabs}(tw_lu[(tw_i * {size}) + tw_k]) > tw_big) {{",
+        f"            tw_big = {w.fabs}(tw_lu[(tw_i * {size}) + tw_k]);",
         "            tw_p = tw_i;",
         "        }",
         "    }",
         "    tw_piv[tw_k] = tw_p;",
-        f"    if (!(tw_big > {w.zero}) || !isfinite(tw_big)) {{",
-        "        return 1;",
-        "    }",
-        "    if (tw_p != tw_k) {",
-        f"        for (tw_j = 0U; tw_j < {size}; ++tw_j) {{",
-        f"            tw_m = tw_lu[tw_k * {size} + tw_j];",
-        f"            tw_lu[tw_k * {size} + tw_j] = tw_lu[tw_p * {size} + tw_j];",
-        f"            tw_lu[tw_p * {size} + tw_j] = tw_m;",
+        f"    if (!(tw_big > {w.zero}) || (isfinite(tw_big) == 0)) {{",
+        "        tw_bad = 1;",
+        "    } else {",
+        "        if (tw_p != tw_k) {",
+        f"            for (tw_j = 0U; tw_j < {size}; ++tw_j) {{",
+        f"                tw_m = tw_lu[(tw_k * {size}) + tw_j];",
+        f"                tw_lu[(tw_k * {size}) + tw_j] = tw_lu[(tw_p * {size}) + tw_j];",
+        f"                tw_lu[(tw_p * {size}) + tw_j] = tw_m;",
+        "            }",
         "        }",
-        "    }",
-        f"    for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
-        f"        tw_m = tw_lu[tw_i * {size} + tw_k] / tw_lu[tw_k * {size} + tw_k];",
-        f"        tw_lu[tw_i * {size} + tw_k] = tw_m;",
-        f"        for (tw_j = tw_k + 1U; tw_j < {size}; ++tw_j) {{",
-        f"            tw_lu[tw_i * {size} + tw_j] = tw_lu[tw_i * {size} + tw_j] - "
-        f"tw_m * tw_lu[tw_k * {size} + tw_j];",
+        f"        for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
+        f"            tw_m = tw_lu[(tw_i * {size}) + tw_k] / tw_lu[(tw_k * {size}) + tw_k];",
+        f"            tw_lu[(tw_i * {size}) + tw_k] = tw_m;",
+        f"            for (tw_j = tw_k + 1U; tw_j < {size}; ++tw_j) {{",
+        f"                tw_lu[(tw_i * {size}) + tw_j] = tw_lu[(tw_i * {size}) + tw_j] - "
+        f"(tw_m * tw_lu[(tw_k * {size}) + tw_j]);",
+        "            }",
         "        }",
         "    }",
         "}",
-        "return 0;"]
+        "return tw_bad;"]
     return dict(doc=f"Assemble the {n} x {n} iteration matrix and factor it by LU with partial "
                 "pivoting (row swaps in tw_piv). Returns 1 on a zero or non-finite pivot.",
                 signature=f"static int {w.p}_factor(const {w.real_t} *restrict tw_jac, {scale_arg}"
@@ -187,7 +194,7 @@ def solve_functions(w: _Writer, solve: LinearSolve) -> list[dict]:
             for i in range(n):
                 terms = [f"{w.printer.literal(v)} * tw_in[{j}]" for j, v in enumerate(inverse[i])
                          if v != 0]
-                body.append(f"tw_r[{i}] = " + (" + ".join(terms) if terms else w.zero) + ";")
+                body.append(f"tw_r[{i}] = " + (sum_of_products(terms) if terms else w.zero) + ";")
             note = f" (h*a = {solve.diagonals[which]})" if solve.diagonals else ""
             functions.append(dict(
                 doc=f"Solve M d = r in place with the inverse of the constant iteration matrix"
@@ -204,19 +211,19 @@ def solve_functions(w: _Writer, solve: LinearSolve) -> list[dict]:
             terms = [f"tw_lu[{slot[(i, k)]}] * tw_r[{k}]" for k in solve.order
                      if (i, k) in filled and position[k] < position[i]]
             if terms:
-                body.append(f"tw_r[{i}] = tw_r[{i}] - ({' + '.join(terms)});")
+                body.append(f"tw_r[{i}] = tw_r[{i}] - {grouped(terms)};")
         body.append("/* back substitution */")
         for i in reversed(solve.order):
             terms = [f"tw_lu[{slot[(i, j)]}] * tw_r[{j}]" for j in solve.order
                      if (i, j) in filled and position[j] > position[i]]
-            rest = f"(tw_r[{i}] - ({' + '.join(terms)}))" if terms else f"tw_r[{i}]"
+            rest = f"(tw_r[{i}] - {grouped(terms)})" if terms else f"tw_r[{i}]"
             body.append(f"tw_r[{i}] = {rest} / tw_lu[{slot[(i, i)]}];")
         return [dict(doc="Solve M d = r in place with the straight-line factors.",
                      signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
                                f"{w.real_t} *restrict tw_r)",
                      body=body)]
     size = f"{w.up}_NSOLVE"
-    body = ["size_t tw_i;", "size_t tw_j;", f"{w.real_t} tw_s;", "",
+    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", f"{w.real_t} tw_s;", "",
             f"for (tw_i = 0U; tw_i < {size}; ++tw_i) {{",
             "    if (tw_piv[tw_i] != tw_i) {",
             "        tw_s = tw_r[tw_i];",
@@ -227,16 +234,17 @@ def solve_functions(w: _Writer, solve: LinearSolve) -> list[dict]:
             f"for (tw_i = 1U; tw_i < {size}; ++tw_i) {{",
             "    tw_s = tw_r[tw_i];",
             "    for (tw_j = 0U; tw_j < tw_i; ++tw_j) {",
-            f"        tw_s = tw_s - tw_lu[tw_i * {size} + tw_j] * tw_r[tw_j];",
+            f"        tw_s = tw_s - (tw_lu[(tw_i * {size}) + tw_j] * tw_r[tw_j]);",
             "    }",
             "    tw_r[tw_i] = tw_s;",
             "}",
-            f"for (tw_i = {size}; tw_i-- > 0U;) {{",
+            f"for (tw_k = 0U; tw_k < {size}; ++tw_k) {{",
+            f"    tw_i = ({size} - 1U) - tw_k;",
             "    tw_s = tw_r[tw_i];",
             f"    for (tw_j = tw_i + 1U; tw_j < {size}; ++tw_j) {{",
-            f"        tw_s = tw_s - tw_lu[tw_i * {size} + tw_j] * tw_r[tw_j];",
+            f"        tw_s = tw_s - (tw_lu[(tw_i * {size}) + tw_j] * tw_r[tw_j]);",
             "    }",
-            f"    tw_r[tw_i] = tw_s / tw_lu[tw_i * {size} + tw_i];",
+            f"    tw_r[tw_i] = tw_s / tw_lu[(tw_i * {size}) + tw_i];",
             "}"]
     return [dict(doc="Solve M d = r in place with the pivoted LU factors.",
                  signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
@@ -264,8 +272,7 @@ class _Solver:
             return []
         args = "tw_jac, " + (f"{g_name}, " if s.needs_scale else "") + "tw_lu" + \
             (", tw_piv" if s.kind == DENSE_LU else "")
-        return [f"if ({w.p}_factor({args}) != 0) {{",
-                f"    return {w.names.status('SINGULAR')};", "}"]
+        return fail_lines(w.names, f"{w.p}_factor({args}) != 0", "SINGULAR")
 
     def call(self, vector: str, which: int = 0) -> str:
         s, w = self.solve, self.w
@@ -293,7 +300,7 @@ def _newton_test(w: _Writer, size: int, z: str, per_state: bool) -> list[str]:
             f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{",
             f"    const {w.real_t} tw_e = {w.fabs}(tw_r[tw_i]) / tw_scale[{index}];",
             f"    {z}[tw_i] = {z}[tw_i] + tw_r[tw_i];",
-            "    if (tw_e > tw_err || isnan(tw_e)) {",
+            "    if ((tw_e > tw_err) || (isnan(tw_e) != 0)) {",
             "        tw_err = tw_e;",
             "    }",
             "}"]
@@ -302,25 +309,22 @@ def _newton_test(w: _Writer, size: int, z: str, per_state: bool) -> list[str]:
 def _newton_loop(w: _Writer, inner: list[str], size: int, z: str, per_state: bool) -> list[str]:
     """The bounded simplified-Newton loop around one residual evaluation + solve."""
     tol = f"{w.up}_NEWTON_TOL"
-    body = ["tw_done = 0U;",
-            f"for (tw_it = 0U; tw_it < {w.up}_NEWTON_ITERATIONS; ++tw_it) {{"]
+    body = ["tw_done = 0U;  /* 0: iterating, 1: converged, 2: diverged */",
+            f"for (tw_it = 0U; (tw_it < {w.up}_NEWTON_ITERATIONS) && (tw_done == 0U); ++tw_it) {{"]
     body += ["    " + line if line else line for line in inner + _newton_test(w, size, z, per_state)]
     body += [f"    if (tw_err <= {tol}) {{",
              "        tw_done = 1U;",
-             "        break;",
+             "    } else if (isfinite(tw_err) == 0) {",
+             "        tw_done = 2U;",
+             "    } else {",
+             "        /* not yet converged: iterate again */",
              "    }",
-             "    if (!isfinite(tw_err)) {",
-             "        break;  /* diverged */",
-             "    }",
-             "}",
-             "if (tw_done == 0U) {",
-             f"    return {w.names.status('NO_CONVERGENCE')};",
              "}"]
-    return body
+    return body + fail_lines(w.names, "tw_done != 1U", "NO_CONVERGENCE")
 
 
 def _sum(terms) -> str:
-    return " + ".join(terms)
+    return sum_of_products(terms)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -346,7 +350,7 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
         terms = [f"{w.const(f'A{i + 1}{j + 1}H', h * method.a[i][j], f'a{i + 1}{j + 1}*h')}"
                  f" * tw_k[{j}][tw_i]" for j in range(i) if method.a[i][j] != 0]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_w[tw_i] = tw_x[tw_i]" + (f" + ({_sum(terms)});" if terms else ";"),
+                  f"    tw_w[tw_i] = tw_x[tw_i]" + (f" + {grouped(terms)};" if terms else ";"),
                   "}"]
         time = w.time(method.c[i] * h, f"C{i + 1}H")
         g = h * method.a[i][i]
@@ -363,7 +367,7 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
                       "}"]
             residual = [f"{w.p}_rates({time}, tw_y, tw_ctx, tw_f);",
                         f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                        f"    tw_r[tw_i] = tw_w[tw_i] + {g_name} * tw_f[tw_i] - tw_y[tw_i];",
+                        f"    tw_r[tw_i] = (tw_w[tw_i] + ({g_name} * tw_f[tw_i])) - tw_y[tw_i];",
                         "}",
                         solver.call("tw_r", which)]
             inner += _newton_loop(w, residual, w.model.nx, "tw_y", per_state=False)
@@ -383,7 +387,7 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
     terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
              for j, v in step.update_f]
     inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+              f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     return decl, inner
 
 
@@ -404,7 +408,7 @@ def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[s
         terms = [f"{w.const(f'A{p + 1}{q + 1}H', h * method.a[p][q], f'a{p + 1}{q + 1}*h')}"
                  f" * tw_f[{q}][tw_i]" for q in range(s) if method.a[p][q] != 0]
         residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                     f"    tw_r[{p * nx}U + tw_i] = ({_sum(terms) or w.zero}) - "
+                     f"    tw_r[{p * nx}U + tw_i] = {grouped(terms) if terms else w.zero} - "
                      f"tw_z[{p * nx}U + tw_i];", "}"]
     residual.append(solver.call("tw_r"))
     inner += solver.factor(None)
@@ -422,7 +426,7 @@ def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[s
         terms = [f"{w.const(f'D{i + 1}', d, f'd{i + 1} (b^T A^-1)')} * tw_z[{i * nx}U + tw_i]"
                  for i, d in step.update_z]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+                  f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     else:
         for p, _ in step.update_f:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
@@ -431,7 +435,7 @@ def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[s
         terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_f[{j}][tw_i]"
                  for j, v in step.update_f]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+                  f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     return decl, inner
 
 
@@ -453,7 +457,7 @@ def _rosenbrock_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]
         source = "tw_x"
         if terms:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_y[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+                      f"    tw_y[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
             source = "tw_y"
         inner.append(f"{w.p}_rates({w.time(c[i] * h, f'C{i + 1}H')}, {source}, tw_ctx, tw_k[{i}]);")
         extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', method.coupling[i][j], f'coupling{i + 1}{j + 1}')}"
@@ -463,12 +467,12 @@ def _rosenbrock_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]
                          " * tw_ft[tw_i]")
         if extra:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + ({_sum(extra)});", "}"]
+                      f"    tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + {grouped(extra)};", "}"]
         inner.append(solver.call(f"tw_k[{i}]"))
     terms = [f"{w.const(f'B{j + 1}H', h * method.b[j], f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
              for j in range(s) if method.b[j] != 0]
     inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + ({_sum(terms)});", "}"]
+              f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     if not any("tw_y" in line for line in inner):
         decl = [d for d in decl if not d.startswith(f"{w.real_t} tw_y[")]
     return decl, inner
@@ -548,28 +552,15 @@ def implicit_context(step: ImplicitStep, precision: str) -> dict:
         decl, inner = _exact_body(w)
     else:
         decl, inner = body_builders[step.scheme](w, solver)
-    body = [f"{names.real_t} tw_x[{w.nx}];", *decl]
     if solver is not None:
         if not step.prefactored:
-            body.append(f"{names.real_t} tw_jac[{len(step.jacobian.pattern)}];")
-        body += solver.declarations()
-    body.append(f"const {names.real_t} tw_t0 = tw_ctx->{model.time};")
-    if step.scheme != EXACT:
-        body.append(f"{names.real_t} tw_t = tw_t0;")
-    body += ["size_t tw_i;", "uint32_t tw_n;", ""]
-    body += load_lines(step, names)
-    body.append(f"for (tw_n = 0U; tw_n < {names.macro('SUBSTEPS')}; ++tw_n) {{")
+            decl.append(f"{names.real_t} tw_jac[{len(step.jacobian.pattern)}];")
+        decl += solver.declarations()
     prelude = []
     if solver is not None and not step.prefactored:
         prelude.append(f"{model.name}_jacobian(tw_t, tw_x, tw_ctx, tw_jac);")
-    inner = prelude + inner
-    if step.scheme != EXACT:
-        inner.append(f"tw_t = tw_t0 + ({names.real_t})(tw_n + 1U) * "
-                     f"{w.const('STEP', step.h, 'h')};")
-    body += ["    " + line if line else line for line in inner]
-    body.append("}")
-    body += commit_lines(step, names)
-    body.append(f"return {names.status('OK')};")
+    step_name = None if step.scheme == EXACT else w.const("STEP", step.h, "h")
+    body = advance_body(step, names, decl, prelude + inner, step_name)
     doc = f"One tick: {step.substeps} step(s) of {step.method.name}; the context is written only " \
           "after every check passed."
     functions.append(dict(doc=doc, signature=f"{names.status_t} {model.name}_advance("
