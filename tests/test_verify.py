@@ -18,7 +18,7 @@ from conftest import DEMO_MODELS
 
 EXPLICIT_IDS = [i for i in builtin_ids() if builtin(i).kind == EXPLICIT]
 # Ticks per demo model: fast enough to see the dynamics, stable for every explicit method.
-DEMO_DT = {"heater": 0.5, "axis": 1e-4}
+DEMO_DT = {"heater": 0.5, "axis": 1e-4, "battery": 1.0}
 
 
 @pytest.mark.parametrize("method_id", EXPLICIT_IDS)
