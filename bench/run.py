@@ -23,7 +23,7 @@ from codegen.method import builtin  # noqa: E402
 from codegen.model import load_model  # noqa: E402
 from codegen.pipeline import generate  # noqa: E402
 from codegen.simplify import simplify  # noqa: E402
-from codegen.verify import run_c, test_inputs  # noqa: E402
+from codegen.verify import excitation, run_c  # noqa: E402
 
 CASES = [("heater.toml", 0.5), ("axis.toml", 1e-4)]
 METHODS = ["euler", "rk4", "dp5"]
@@ -37,7 +37,7 @@ def main() -> None:
           f"{'ops/tick':>9} {'Mticks/s':>9}")
     for file, dt in CASES:
         model = load_model(ROOT / "examples" / file)
-        u = test_inputs(model, args.ticks)
+        u = excitation(model, args.ticks)
         for method_id in METHODS:
             method = builtin(method_id)
             ops = step_cost(simplify(discretize(model, method, dt))).total

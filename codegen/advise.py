@@ -36,6 +36,7 @@ from . import analysis
 from .errors import CheckError, TickwrightError
 from .method import Tableau
 from .model import Model
+from .verify import excitation
 
 EXPLICIT = "explicit"
 LINEARLY_IMPLICIT = "linearly implicit"
@@ -531,25 +532,6 @@ def state_scales(model: Model, run: np.ndarray | None = None) -> np.ndarray:
     return np.array(scales)
 
 
-def advice_inputs(model: Model, horizon: float, dt: float, n: int) -> np.ndarray:
-    """The excitation of the advice runs, one row per tick of dt, held over the tick.
-
-    Each ranged input sweeps its range smoothly, u = low + (high - low) (0.5 + 0.4 sin(2 pi (j + 1)
-    t / horizon)) for input j, sampled at the start of each tick as firmware would; an input
-    without a range keeps its default. A smooth sweep, not a step, so that a stiff model's fast
-    modes are excited only as much as a controller's tick-to-tick changes excite them.
-    """
-    t = np.arange(n) * dt
-    u = np.zeros((n, len(model.inputs)))
-    for j, inp in enumerate(model.inputs):
-        if inp.range:
-            lo, hi = inp.range
-            u[:, j] = lo + (hi - lo) * (0.5 + 0.4 * np.sin(2 * np.pi * (j + 1) * t / horizon))
-        else:
-            u[:, j] = inp.default
-    return u
-
-
 def _simulate(stepper: Stepper, x0, inputs, dt, substeps=1):
     n = len(inputs)
     h = dt / substeps
@@ -576,14 +558,16 @@ LOCAL_SAMPLES = 40
 def accuracy(model: Model, method, dt: float, horizon: float, scales=None) -> Accuracy:
     """Estimate the errors of the method at tick dt over the horizon.
 
-    The run starts at the initial states under advice_inputs and compares n ticks of one step dt
+    The run starts at the initial states under verify.excitation (each ranged input sweeps its
+    range smoothly, as a controller's tick-to-tick changes would excite a stiff model's fast
+    modes, not as a step) and compares n ticks of one step dt
     with n ticks of two steps dt/2 (same inputs): for a method of order p the error of the coarse
     run is (x_dt - x_dt/2) * 2^p / (2^p - 1) (Richardson; HNW II.4, from memory). The local error
     is the embedded difference where the method has a pair, else the same doubling applied to
     single steps at LOCAL_SAMPLES ticks.
     """
     n = max(1, int(round(horizon / dt)))
-    u = advice_inputs(model, horizon, dt, n)
+    u = excitation(model, n)
     x0 = np.array([s.initial for s in model.states], float)
     order = getattr(method, "order", None)
     factor = 1.0 if order is None else 2.0 ** order / (2.0 ** order - 1.0)
@@ -1044,7 +1028,7 @@ def check_error_estimate(model: Model, method: Tableau, dt: float, substeps: int
     """
     from .build import build, strict_compile
     from .pipeline import generate
-    from .verify import as_precision, test_inputs
+    from .verify import as_precision, excitation
 
     csource = generate(model, method, dt, substeps, precision, error_estimate=True)
     strict_compile(csource)
@@ -1054,7 +1038,7 @@ def check_error_estimate(model: Model, method: Tableau, dt: float, substeps: int
     err = ffi.new(f"{model.name}_real_t *")
     getattr(lib, f"{model.name}_reset")(ctx)
     advance = getattr(lib, f"{model.name}_advance_with_error")
-    u_all = as_precision(test_inputs(model, ticks), precision)
+    u_all = as_precision(excitation(model, ticks), precision)
     f, jac = _model_functions(model)
     from .emit import error_scale
 

@@ -155,11 +155,11 @@ def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: i
     from . import reference
     from .build import build
     from .pipeline import generate
-    from .verify import as_precision, run_c, test_inputs
+    from .verify import as_precision, excitation, run_c
 
     out = Path(out_dir)
     written = []
-    u = test_inputs(model, ticks)
+    u = excitation(model, ticks)
     runs = {}
     ts = None
     for precision in precisions:

@@ -86,7 +86,7 @@ class CheckReport:
         return d
 
 
-def test_inputs(model: Model, ticks: int) -> np.ndarray:
+def excitation(model: Model, ticks: int) -> np.ndarray:
     """A deterministic excitation: each ranged input sweeps its range; others keep their default.
 
     Shape (ticks, nu). The frequencies differ per input so inputs are not collinear.
@@ -210,7 +210,7 @@ def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precisi
     """
     csource = generate(model, method, dt, substeps, precision, **(options or {}))
     built = build(csource, model)
-    u = test_inputs(model, ticks) if inputs is None else inputs
+    u = excitation(model, ticks) if inputs is None else inputs
     u = as_precision(u, precision)
     c_run = run_c(built, model, u)
     params = {p.name: float(as_precision(p.value, precision)) for p in model.parameters}

@@ -24,7 +24,7 @@ from codegen.model import Input, Parameter, State, define, load_model
 from codegen.pipeline import generate
 from codegen.reference import high_accuracy
 from codegen.resources import examples_dir
-from codegen.verify import run_c
+from codegen.verify import excitation, run_c
 
 IMPLICIT_KINDS = ("diagonally implicit", "fully implicit", "linearly implicit")
 
@@ -128,7 +128,7 @@ def c_error(model, method_id, dt, precision, horizon):
     """Max |C - solve_ivp| / full scale over the advice run (same excitation as the advice)."""
     method = builtin(method_id)
     n = int(round(horizon / dt))
-    u = advise.advice_inputs(model, horizon, dt, n)
+    u = excitation(model, n)
     built = build(generate(model, method, dt, 1, precision), model)
     run = run_c(built, model, u)
     exact = high_accuracy(model, dt, u)
@@ -180,7 +180,7 @@ def test_float_roundoff_estimate_bounds_the_measured_float_error_and_picks_doubl
     method = builtin("rk4")
     dt, horizon = 10.0, 1000.0
     n = int(horizon / dt)
-    u = advise.advice_inputs(model, horizon, dt, n)
+    u = excitation(model, n)
     runs = {p: run_c(build(generate(model, method, dt, 1, p), model), model, u) for p in
             ("float", "double")}
     scales = advise.state_scales(model)

@@ -130,10 +130,10 @@ def test_cross_check_catches_a_wrong_coefficient(heater):
     bad = replace(good, b=(sp.Rational(1, 6) + sp.Rational(1, 1000), sp.Rational(1, 3) -
                            sp.Rational(1, 1000), sp.Rational(1, 3), sp.Rational(1, 6)))
     from codegen import reference
-    from codegen.verify import as_precision, test_inputs
+    from codegen.verify import as_precision, excitation
 
     model = heater
-    u = test_inputs(model, 100)
+    u = excitation(model, 100)
     c_run = run_c(build(generate(model, bad, 0.5, precision="double"), model), model, u)
     ref = reference.run(model, good, 0.5, 1, u)
     assert np.max(np.abs(c_run.xs - ref.xs)) > 1e-6
