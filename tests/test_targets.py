@@ -18,7 +18,7 @@ import pytest
 
 from codegen.emit import CSource
 from codegen.errors import BuildError, TickwrightError
-from codegen.method import builtin
+from codegen.method import builtin, builtin_ids
 from codegen.model import load_model
 from codegen.pipeline import generate
 from codegen.resources import targets_dir
@@ -204,6 +204,12 @@ edge: { sourcename: "m_rates" targetname: "expf" }
 
 # ---- every target, every demo model ---------------------------------------------------------------
 
+# Implicit, linearly implicit and exact methods run on the two FPU cores in their own precision.
+IMPLICIT_TARGETS = {"cortex-m4f": "float", "cortex-m7": "double"}
+# zoh-exact refuses nonlinear models and tunable matrix entries: only the linear demo applies.
+EXACT_ONLY_ON = ("battery",)
+
+
 def _cases():
     for tid in TARGET_IDS:
         methods = COMMON_METHODS + ((EXTRA_METHOD[tid],) if tid in EXTRA_METHOD else ())
@@ -213,6 +219,14 @@ def _cases():
                 for precision in precisions:
                     yield pytest.param(tid, str(path), method, precision,
                                        id=f"{tid}-{path.stem}-{method}-{precision}")
+    implicit = [i for i in builtin_ids() if not builtin(i).is_explicit]
+    for tid, precision in IMPLICIT_TARGETS.items():
+        for path in MODELS:
+            for method in implicit:
+                if method == "zoh-exact" and path.stem not in EXACT_ONLY_ON:
+                    continue
+                yield pytest.param(tid, str(path), method, precision,
+                                   id=f"{tid}-{path.stem}-{method}-{precision}")
 
 
 @pytest.mark.parametrize("target_id, model_path, method, precision", list(_cases()))
