@@ -1,6 +1,6 @@
 """Step-size advice (codegen.advise), the methods table and the run-time error estimate.
 
-Outside references: stability limits from /work/shared/REFERENCES.md (HNW = Hairer, Norsett & Wanner,
+Outside references: stability limits from the shared REFERENCES.md (HNW = Hairer, Norsett & Wanner,
 Solving ODEs I; HW = Hairer & Wanner, Solving ODEs II; "[mem]" = from memory), closed-form
 eigenvalues of linear models, scipy's brentq and solve_ivp, and the generated C itself.
 """

@@ -1,6 +1,6 @@
 """Order conditions and linear stability (codegen.analysis) against published values.
 
-Sources, abbreviated as in /work/shared/REFERENCES.md:
+Sources, abbreviated as in the shared REFERENCES.md:
 HNW = Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., 1993; HW = Hairer & Wanner, Solving ODEs II,
 2nd ed., 1996. "[mem]" marks a value recalled from that source, not read from the page.
 """

@@ -1,6 +1,6 @@
 """Implicit, linearly implicit and exact methods: generated C against outside references.
 
-Sources, abbreviated as in /work/shared/REFERENCES.md: HW = Hairer & Wanner, Solving ODEs II, 2nd
+Sources, abbreviated as in the shared REFERENCES.md: HW = Hairer & Wanner, Solving ODEs II, 2nd
 ed., 1996; "[mem]" marks a value recalled from that source, not read from the page. Outside
 references used here: scipy's solve_ivp (DOP853 at rtol 1e-12) and scipy.signal.cont2discrete.
 """
