@@ -13,9 +13,10 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import sympy as sp
 
 from .model import Model
+from .numeric import jacobian_function, output_function, rate_function  # noqa: F401 (API)
+from .reference_implicit import stepper as implicit_stepper
 
 
 @dataclass(frozen=True)
@@ -25,38 +26,6 @@ class Trajectory:
     ts: np.ndarray
     xs: np.ndarray
     completed: int
-
-
-def rate_function(model: Model, parameters: dict[str, float] | None = None):
-    """f(t, x, u) -> dx/dt as a numpy function of float64 arrays (parameters fixed)."""
-    values = model.parameter_values()
-    values.update(parameters or {})
-    psyms = [p.symbol for p in model.parameters]
-    args = [model.t, list(model.x), list(model.u), psyms]
-    fn = sp.lambdify(args, list(model.f), modules="numpy")
-    pvals = [values[p.name] for p in model.parameters]
-
-    def f(t, x, u):
-        with np.errstate(all="ignore"):
-            return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64).reshape(-1)
-
-    return f
-
-
-def output_function(model: Model, parameters: dict[str, float] | None = None):
-    """g(t, x, u) -> outputs, the same way as rate_function."""
-    values = model.parameter_values()
-    values.update(parameters or {})
-    psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms],
-                     [o.resolved for o in model.outputs], modules="numpy")
-    pvals = [values[p.name] for p in model.parameters]
-
-    def g(t, x, u):
-        with np.errstate(all="ignore"):
-            return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64).reshape(-1)
-
-    return g
 
 
 def explicit_step(f, a, b, c, t, x, u, h):
@@ -78,8 +47,6 @@ def run(model: Model, method, dt: float, substeps: int, inputs: np.ndarray,
     """
     f = rate_function(model, parameters)
     if stepper is None and not method.is_explicit:  # implicit, Rosenbrock, exact: own module
-        from .reference_implicit import stepper as implicit_stepper
-
         stepper = implicit_stepper(model, method, parameters)
     if stepper is None:
         a, b, c = method.floats()
@@ -127,16 +94,3 @@ def high_accuracy(model: Model, dt: float, inputs: np.ndarray, x0=None, paramete
     return Trajectory(ts=ts, xs=xs, completed=n)
 
 
-def jacobian_function(model: Model, parameters: dict[str, float] | None = None):
-    """df/dx(t, x, u) as a numpy function, differentiated symbolically from the model."""
-    values = model.parameter_values()
-    values.update(parameters or {})
-    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
-    psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy")
-    pvals = [values[p.name] for p in model.parameters]
-
-    def jac(t, x, u):
-        return np.array(fn(t, list(x), list(u), pvals), dtype=np.float64)
-
-    return jac

@@ -22,22 +22,13 @@ import sympy as sp
 
 from .method import ExactDiscretization, LinearlyImplicit
 from .model import Model
-from .reference import jacobian_function, rate_function
+from .numeric import jacobian_function, numeric, rate_function
 
 # Full Newton stops when the correction is below this fraction of the iterate's size: a few units
 # of double roundoff, reachable because full Newton converges quadratically.
 REFERENCE_NEWTON_TOL = 1e-14
 # Iterations before the reference gives up (it then reports the tick as not completed).
 REFERENCE_NEWTON_ITERATIONS = 50
-
-
-def _numeric(model: Model, exprs, parameters):
-    values = model.parameter_values()
-    values.update(parameters or {})
-    psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], exprs, modules="numpy")
-    pvals = [values[p.name] for p in model.parameters]
-    return lambda t, x, u: np.array(fn(t, list(x), list(u), pvals), dtype=np.float64)
 
 
 def rk_stepper(model: Model, tableau, parameters=None):
@@ -78,7 +69,7 @@ def rosenbrock_stepper(model: Model, method: LinearlyImplicit, parameters=None):
     """One Rosenbrock step in the form of method.LinearlyImplicit, with numpy's dense solve."""
     f = rate_function(model, parameters)
     jac = jacobian_function(model, parameters)
-    ft = _numeric(model, [sp.diff(r, model.t) for r in model.f], parameters)
+    ft = numeric(model, [sp.diff(r, model.t) for r in model.f], parameters)
     gamma = float(method.gamma)
     alpha = np.array([[float(v) for v in row] for row in method.alpha])
     coupling = np.array([[float(v) for v in row] for row in method.coupling])
@@ -110,7 +101,7 @@ def linear_matrices(model: Model, parameters=None):
     x0, u0 = np.zeros(model.nx), np.zeros(len(model.inputs))
     a = jac(0.0, x0, u0).reshape(model.nx, model.nx)
     if model.inputs:
-        bfun = _numeric(model, sp.Matrix(model.f).jacobian(sp.Matrix(model.u)), parameters)
+        bfun = numeric(model, sp.Matrix(model.f).jacobian(sp.Matrix(model.u)), parameters)
         bmat = bfun(0.0, x0, u0).reshape(model.nx, len(model.inputs))
     else:
         bmat = np.zeros((model.nx, 0))
