@@ -168,3 +168,38 @@ def test_demo_runs_the_whole_job(tmp_path):
     for needle in ("files written:", "axis.c", "method and tick:", "cost per tick:",
                    "verdict: PASS"):
         assert needle in result.stdout
+
+
+@pytest.mark.parametrize("target", ["host", "cortex-m4f"])
+def test_check_with_a_target_reports_its_figures_in_json(target):
+    import shutil
+
+    from codegen.targets import load_target
+
+    if shutil.which(load_target(target).cc) is None:
+        pytest.fail(f"{target}: toolchain missing; run scripts/install-toolchains.sh")
+    result = run("check", HEATER, "--method", "rk4", "--dt", "0.5", "--ticks", "50",
+                 "--no-order", "--target", target, "--json")
+    assert result.exit_code == 0, result.output
+    report = json.loads(result.stdout)
+    assert report["passed"] is True and report["matches_host"] is True
+    for key in ("flash_bytes", "stack_bytes", "instructions_per_tick"):
+        assert isinstance(report[key], int) and report[key] >= 0, key
+    assert report["instructions_per_tick"] > 0 and report["flash_bytes"] > 0
+    assert report["targets"][0]["target"] == target
+
+
+def test_check_with_a_target_prints_the_figures():
+    result = run("check", HEATER, "--method", "rk4", "--dt", "0.5", "--ticks", "50", "--no-order",
+                 "--target", "cortex-m4f")
+    assert result.exit_code == 0, result.output
+    line = next(l for l in result.stdout.splitlines() if "target cortex-m4f float" in l)
+    assert "flash" in line and "stack" in line and "instructions per tick" in line
+    assert "MISRA C:2012 (cppcheck): 0 finding(s)" in result.stdout
+
+
+def test_targets_lists_the_six_cores():
+    result = run("targets", "--json")
+    assert result.exit_code == 0
+    ids = {t["id"] for t in json.loads(result.stdout)}
+    assert ids == {"host", "cortex-m4f", "cortex-m3", "cortex-m7", "rv32imac", "rv32imafc"}
