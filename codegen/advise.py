@@ -36,7 +36,7 @@ from . import analysis
 from .errors import CheckError, TickwrightError
 from .method import Tableau
 from .model import Model
-from .verify import excitation
+from .verify import excitation, state_scales
 
 EXPLICIT = "explicit"
 LINEARLY_IMPLICIT = "linearly implicit"
@@ -518,18 +518,6 @@ class Accuracy:
     local_by: str
     completed: bool
     newton_iterations: float | None = None
-
-
-def state_scales(model: Model, run: np.ndarray | None = None) -> np.ndarray:
-    """Full scale of each state: max |range bound|, else max |x| over a run, else 1."""
-    scales = []
-    for i, s in enumerate(model.states):
-        value = max(abs(s.range[0]), abs(s.range[1])) if s.range else 0.0
-        if value == 0 and run is not None:
-            finite = run[:, i][np.isfinite(run[:, i])]
-            value = float(np.max(np.abs(finite))) if finite.size else 0.0
-        scales.append(value if value > 0 else 1.0)
-    return np.array(scales)
 
 
 def _simulate(stepper: Stepper, x0, inputs, dt, substeps=1):

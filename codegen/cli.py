@@ -169,8 +169,8 @@ def _print_check(report, model, method, dt, substeps, passed: bool | None = None
         verdict = "ok" if c.passed else "FAIL"
         same = "ok" if c.max_difference <= c.tolerance and c.completed == c.ticks else "FAIL"
         click.echo(f"  {'cross-check ' + c.precision:<24} {same:<5} max |C - reference| = "
-                   f"{c.max_difference:.3g} (rounding bound {c.tolerance:.3g}) over {c.ticks} "
-                   "ticks")
+                   f"{c.max_difference:.3g} in {c.worst_state} (bound {c.tolerance:.3g}) over "
+                   f"{c.ticks} ticks")
         verdict = "ok" if c.accurate else "FAIL"
         click.echo(f"  {'accuracy ' + c.precision:<24} {verdict:<5} max |C - solve_ivp| = "
                    f"{100 * c.error_vs_high_accuracy:.3g} % of the state's scale (target "
@@ -208,7 +208,7 @@ def _print_check(report, model, method, dt, substeps, passed: bool | None = None
 @click.option("--tolerance", type=click.FloatRange(min=0, min_open=True), default=1e-2,
               show_default=True,
               help="Accuracy target against solve_ivp, as a fraction of each state's scale "
-                   "(its range width, else its largest magnitude).")
+                   "(the largest magnitude of its range, else of its run).")
 @click.option("--json", "as_json", is_flag=True, help="Print the report as JSON.")
 @click.option("--error-estimate", is_flag=True,
               help="Also build <name>_advance_with_error() and check its estimate against the "

@@ -456,10 +456,8 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
 
 
 def error_scale(state) -> sp.Rational:
-    """Full scale of a state for the run-time error estimate: max |range bound|, else 1."""
-    if state.range and max(abs(state.range[0]), abs(state.range[1])) > 0:
-        return sp.Rational(repr(float(max(abs(state.range[0]), abs(state.range[1])))))
-    return sp.Integer(1)
+    """Full scale of a state for the run-time error estimate: State.full_scale, else 1."""
+    return sp.Rational(repr(state.full_scale)) if state.full_scale else sp.Integer(1)
 
 
 def error_estimate_lines(step: StepProgram, names: Names, printer: Printer, constants: list,

@@ -399,9 +399,7 @@ def plan_solve(jac: Jacobian, coefficients, diagonals=(), solver: str = "auto",
 
 def state_scales(model: Model) -> tuple[float, ...]:
     """Newton scale floor per state: the largest magnitude of its range, else DEFAULT_STATE_SCALE."""
-    return tuple(max(abs(s.range[0]), abs(s.range[1])) if s.range and
-                 max(abs(s.range[0]), abs(s.range[1])) > 0 else DEFAULT_STATE_SCALE
-                 for s in model.states)
+    return tuple(s.full_scale or DEFAULT_STATE_SCALE for s in model.states)
 
 
 def discretize_implicit(model: Model, method, dt, substeps: int = 1,

@@ -78,6 +78,18 @@ class State(Quantity):
     initial: float = 0.0
     rate: sp.Expr = sp.Integer(0)
 
+    @property
+    def full_scale(self) -> float | None:
+        """The largest magnitude of the declared range, or None without a (non-zero) range.
+
+        The one scale every check uses for this state: accuracy targets, Newton tolerances and
+        the run-time error estimate are fractions of it.
+        """
+        if self.range is None:
+            return None
+        value = max(abs(self.range[0]), abs(self.range[1]))
+        return float(value) if value > 0 else None
+
 
 @dataclass(frozen=True)
 class Input(Quantity):
