@@ -85,7 +85,10 @@ def implicit_options(fn):
     return fn
 
 
-def generation_options(newton_iterations, newton_tol, linear_solve) -> dict:
+def generation_options(method, newton_iterations, newton_tol, linear_solve) -> dict:
+    """The implicit-solver options for generate(); an explicit method takes none."""
+    if method.is_explicit:
+        return {}
     return dict(newton_iterations=newton_iterations, newton_tol=newton_tol, solver=linear_solve)
 
 
@@ -152,8 +155,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
-    options = {} if method.is_explicit else \
-        generation_options(newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     if error_estimate:
         csource = generate(model, method, dt, substeps, precision, error_estimate=True)
     else:
@@ -245,8 +247,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
     if error_estimate and getattr(method, "b_hat", None) is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
-    options = None if method.is_explicit else \
-        generation_options(newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
                        progress=say, accuracy=tolerance, options=options)
     passed = report.passed
@@ -427,8 +428,7 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
     else:
         inputs = np.array([[u.default for u in model.inputs]] * (steps or 100)).reshape(
             steps or 100, len(model.inputs))
-    options = {} if method.is_explicit else \
-        generation_options(newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     csource = generate(model, method, dt, substeps, precision, **options)
     built = build(csource, model)
     ffi, lib = built.ffi, built.lib
