@@ -120,16 +120,6 @@ def method_report(method) -> analysis.MethodReport:
     return report
 
 
-def _stability_coefficients(method):
-    """Exact (P, Q) coefficient lists (low to high) of R = P/Q, or None for R = exp(z)."""
-    kind = method_kind(method)
-    if isinstance(method, Tableau):
-        return analysis._tableau_polynomials(method)
-    if kind == LINEARLY_IMPLICIT:
-        return analysis._rosenbrock_coefficients(method.id)
-    return None
-
-
 def stability_function(method) -> sp.Expr:
     """R(z) of any method kind, as a sympy expression in analysis.Z."""
     return method_report(method).stability.function
@@ -294,10 +284,9 @@ def max_stable_dt(method, values, margin: float = 1.0) -> float:
     Growing modes (Re lambda > 0) must be filtered out by the caller (see `decaying`).
     """
     values = _directions(np.asarray(values, dtype=complex))
-    pq = _stability_coefficients(method)
+    pq = analysis.stability_coefficients(method)
     if pq is None or values.size == 0:
         return math.inf
-    p, q = pq
     if method_report(method).a_stable and np.all(values.real <= 0):
         return math.inf
     region = stability_function(method)
@@ -313,11 +302,9 @@ def max_stable_dt(method, values, margin: float = 1.0) -> float:
     candidates = [lam for lam, h in zip(values, numeric) if h <= bound or not np.isfinite(h)]
     limit = math.inf
     for lam in candidates[:64]:
-        poly = analysis._ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
-                                        sp.Rational(abs(float(lam.imag))))
-        h = analysis._first_sign_loss(poly)
+        h = analysis.ray_limit(pq, lam)
         if h is not None:
-            limit = min(limit, float(h))
+            limit = min(limit, h)
     return limit * margin
 
 

@@ -727,15 +727,40 @@ def in_stability_region(tableau_or_r, z) -> np.ndarray:
     return num <= (1 + _REGION_SLACK) * den
 
 
-def max_stable_dt(tableau: Tableau, eigenvalues, margin: float = 1.0) -> float:
+def stability_coefficients(method) -> tuple[tuple, tuple] | None:
+    """Exact coefficient lists (low to high) of R = P/Q for any method kind.
+
+    A Tableau or a linearly implicit (Rosenbrock) method gives (P, Q); the exact discretization,
+    whose R(z) = exp(z) is no rational function, gives None.
+    """
+    if isinstance(method, Tableau):
+        return _tableau_polynomials(method)
+    if getattr(method, "kind", "") == "linearly implicit":
+        return _rosenbrock_coefficients(method.id)
+    return None
+
+
+def ray_limit(coefficients: tuple[tuple, tuple], lam: complex) -> float | None:
+    """The first h > 0 at which h*lambda leaves the stability region of R = P/Q, or None.
+
+    Found exactly as the first sign change of |Q(h lambda)|^2 - |P(h lambda)|^2 in h (a touch
+    without crossing does not count).
+    """
+    p, q = coefficients
+    h = _first_sign_loss(_ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
+                                         sp.Rational(abs(float(lam.imag)))))
+    return None if h is None else float(h)
+
+
+def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     """The largest h with h*lambda in the stability region for every eigenvalue, times margin.
 
-    eigenvalues: complex values (1/s); the result is in seconds. For each lambda != 0 the ray
-    h*lambda, h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed
-    (a touch without crossing does not count), found exactly as the first sign change of the
-    polynomial |Q(h lambda)|^2 - |P(h lambda)|^2 in h. margin in (0, 1] is a safety factor.
-    Returns math.inf if every ray stays stable, 0.0 if some h*lambda leaves the region at once
-    (for example Re lambda > 0, or an explicit method with lambda on the imaginary axis).
+    method: a Tableau, a linearly implicit method, or the exact discretization (always stable
+    for decaying modes). eigenvalues: complex values (1/s); the result is in seconds. For each
+    lambda != 0 the ray h*lambda, h >= 0, is followed outward from 0 to the first point where
+    |R| = 1 is crossed (ray_limit). margin in (0, 1] is a safety factor. Returns math.inf if
+    every ray stays stable, 0.0 if some h*lambda leaves the region at once (for example
+    Re lambda > 0, or an explicit method with lambda on the imaginary axis).
 
     References
     ----------
@@ -743,7 +768,7 @@ def max_stable_dt(tableau: Tableau, eigenvalues, margin: float = 1.0) -> float:
     """
     if not 0 < margin <= 1:
         raise ValueError("margin must be in (0, 1]")
-    p, q = _tableau_polynomials(tableau)
+    coefficients = stability_coefficients(method)
     limit = math.inf
     seen = set()
     for lam in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
@@ -753,9 +778,11 @@ def max_stable_dt(tableau: Tableau, eigenvalues, margin: float = 1.0) -> float:
         if key == (0.0, 0.0) or key in seen:
             continue
         seen.add(key)
-        poly = _ray_polynomial(p, q, sp.Rational(key[0]), sp.Rational(key[1]))
-        h = _first_sign_loss(poly)
-        if h is None:
+        if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
+            if key[0] > 0:
+                return 0.0
             continue
-        limit = min(limit, float(h))
+        h = ray_limit(coefficients, complex(*key))
+        if h is not None:
+            limit = min(limit, h)
     return limit * margin

@@ -458,3 +458,14 @@ def test_report_as_dict_is_plain_data():
     data = analysis.analyse(builtin("bs3")).as_dict()
     assert data["order"] == 3 and data["embedded_order"] == 2 and data["stages"] == 4
     assert data["r_infinity"] is None and data["stability_function"] == str(taylor_exp(3))
+
+
+def test_max_stable_dt_takes_every_method_kind():
+    from codegen.method import builtin
+
+    # Rosenbrock-Euler has R = 1/(1 - z) (A-stable): no limit for decaying modes; the exact
+    # discretization is stable exactly where Re(h lambda) <= 0 (common practice, no source).
+    assert analysis.max_stable_dt(builtin("rosenbrock-euler"), [-1e6, -3 + 4j]) == math.inf
+    assert analysis.max_stable_dt(builtin("zoh-exact"), [-1e6]) == math.inf
+    assert analysis.max_stable_dt(builtin("zoh-exact"), [0.5]) == 0.0
+    assert analysis.stability_coefficients(builtin("zoh-exact")) is None
