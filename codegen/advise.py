@@ -33,7 +33,8 @@ import numpy as np
 import sympy as sp
 
 from . import analysis
-from .errors import CheckError, TickwrightError
+from .errors import CheckError, ModelError, TickwrightError
+from .implicit import linear_parts as exact_linear_parts
 from .method import Tableau
 from .model import Model
 from .verify import excitation, state_scales
@@ -473,20 +474,15 @@ class Stepper:
 
 
 def linear_parts(model: Model):
-    """(A, B, e) with f = A x + B u + e at the parameter values, or None if f is not linear."""
-    baked = {p.symbol: p.value for p in model.parameters}
-    f = sp.Matrix(model.f).xreplace(baked)
-    if model.t in f.free_symbols:
+    """(A, B, e) as float arrays with f = A x + B u + e, or None when the exact method refuses
+    the model (the generator's own rule, implicit.linear_parts: nonlinear, time-dependent, or a
+    tunable parameter inside the matrices)."""
+    try:
+        a, b, e = exact_linear_parts(model)
+    except ModelError:
         return None
-    xs, us = sp.Matrix(model.x), sp.Matrix(model.u) if model.u else sp.zeros(0, 1)
-    A = f.jacobian(xs)
-    B = f.jacobian(us) if model.u else sp.zeros(model.nx, 0)
-    if A.free_symbols or B.free_symbols:
-        return None
-    zero = {s: 0 for s in list(model.x) + list(model.u)}
-    e = f.xreplace(zero)
     to = lambda M: np.array(M.tolist(), dtype=np.float64).reshape(M.shape)
-    return to(A), to(B), to(e).reshape(-1)
+    return to(a), to(b), to(e).reshape(-1)
 
 
 @dataclass(frozen=True)
@@ -846,8 +842,11 @@ def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> Meth
     note = ""
     acc = None
     try:
-        if kind == EXACT and linear_parts(model) is None:
-            raise CheckError("needs a model linear in states and inputs, without time")
+        if kind == EXACT:
+            try:
+                exact_linear_parts(model)
+            except ModelError as exc:  # the generator would refuse it: say why, in its words
+                raise CheckError(str(exc).split(": ", 2)[-1]) from None
         if limit == 0:
             raise CheckError("no step size is stable: an eigenvalue lies outside the region at "
                              "every h (for example a lightly damped mode and an explicit method "

@@ -324,3 +324,19 @@ def test_error_estimate_needs_an_embedded_pair():
                                   "--out", "unused", "--error-estimate"])
     assert result.exit_code == 1
     assert "b_hat" in result.output and result.output.strip().count("\n") == 0
+
+
+@pytest.mark.parametrize("name", ["heater", "battery"])
+def test_the_recommendation_can_always_be_generated(name):
+    # Regression: zoh-exact was once recommended for the heater, whose tunable C_th sits in the
+    # matrix the exact method must exponentiate at generation time, so emit refused it.
+    from codegen.pipeline import generate
+
+    model = load_model(examples_dir() / f"{name}.toml")
+    advice = advise.advise(model, tolerance=1e-3)
+    rec = advice.to_dict()["recommended"]
+    csource = generate(model, builtin(rec["method"]), rec["dt"], precision=rec["precision"])
+    assert csource.files
+    if name == "heater":
+        row = advice.row("zoh-exact")
+        assert "tunable" in row.to_dict()["note"]
