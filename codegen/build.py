@@ -11,7 +11,6 @@ import importlib.util
 import os
 import shutil
 import subprocess
-import sys
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -132,6 +131,3 @@ def strict_compile(csource: CSource, cc: str | None = None, extra: tuple[str, ..
                              f"{' '.join(cmd)}: {first}", cmd, proc.stderr)
     return " ".join(cmd)
 
-
-def python_executable() -> str:
-    return sys.executable
