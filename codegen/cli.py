@@ -18,10 +18,6 @@ from .errors import BuildError, CheckError, MethodError, TickwrightError
 PRECISION_CHOICE = click.Choice(["float", "double"])
 
 
-class Failure(click.exceptions.Exit):
-    """Exit 1 after a one-line diagnostic."""
-
-
 def fail(message: str) -> None:
     click.echo(f"tickwright: error: {message}", err=True)
     raise click.exceptions.Exit(1)
