@@ -86,9 +86,12 @@ def method_kind(method) -> str:
 
 
 def order_tolerance(method) -> float:
-    """Order-condition tolerance for a method whose data are rounded (SDIRK3), else 0."""
+    """Order-condition tolerance for rounded data: built-ins listed as rounded (SDIRK3), and user
+    tableaux (possibly written in decimals); exact built-ins get 0."""
     from .analysis_data import ROUNDED_DATA_TOL
 
+    if getattr(method, "origin", ""):
+        return analysis.DECIMAL_DATA_TOL
     return ROUNDED_DATA_TOL.get(getattr(method, "id", ""), 0.0)
 
 

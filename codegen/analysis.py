@@ -27,7 +27,7 @@ import sympy as sp
 
 from .analysis_data import ROSENBROCK_METHODS
 from .errors import MethodError
-from .method import Tableau, exact
+from .method import DECIMAL_DATA_TOL, Tableau, exact  # noqa: F401 (re-exported)
 
 # The variable of the stability function, z = h * lambda.
 Z = sp.Symbol("z")

@@ -102,18 +102,21 @@ def resolve_method(method_id: str | None, tableau_file: Path | None):
 
 
 def with_order(tableau):
-    """Fill in the order of a user tableau from the order conditions, or check the stated one."""
+    """Fill in the order of a user tableau from the order conditions, or check the stated one.
+
+    A stated order that holds only to rounded-decimal accuracy (DECIMAL_DATA_TOL) is accepted.
+    """
     import dataclasses
 
-    try:
-        from .analysis import order_of
-    except ImportError:  # pragma: no cover - analysis is part of the package
-        return tableau
+    from .analysis import DECIMAL_DATA_TOL, order_of
+
     found = order_of(tableau)
+    if tableau.order is not None and tableau.order > found:
+        found = max(found, min(order_of(tableau, tol=DECIMAL_DATA_TOL), tableau.order))
     if tableau.order is not None and tableau.order != found:
-        raise MethodError(f"{tableau.source.removeprefix('user tableau ')}: order: states "
-                          f"{tableau.order} but the order conditions give {found}; fix the "
-                          "coefficients or the stated order")
+        raise MethodError(f"{tableau.origin or tableau.id}: order: states {tableau.order} but the "
+                          f"order conditions give {found}; fix the coefficients or the stated "
+                          "order")
     return dataclasses.replace(tableau, order=found)
 
 

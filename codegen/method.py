@@ -21,6 +21,10 @@ import sympy as sp
 from .analysis_data import IMPLICIT_TABLEAUX, ROSENBROCK_METHODS
 from .errors import MethodError, located
 
+# Tableaux written in rounded decimals (as many are published) meet their row-sum and weight-sum
+# conditions only to about the digits given; differences below this count as zero.
+DECIMAL_DATA_TOL = 1e-12
+
 EXPLICIT = "explicit"
 DIAGONALLY_IMPLICIT = "diagonally implicit"
 FULLY_IMPLICIT = "fully implicit"
@@ -57,16 +61,16 @@ class Tableau:
         if len(self.c) != s:
             raise MethodError(located(where, "c", f"must have {s} entries to match b"))
         for i, row in enumerate(self.a):
-            if sp.simplify(sum(row) - self.c[i]) != 0:
+            if not _negligible(sum(row) - self.c[i]):
                 raise MethodError(located(
                     where, f"a[{i}]", f"row sums to {sp.nsimplify(sum(row))} but c[{i}] = {self.c[i]}; "
                     "the row sums of a must equal c"))
-        if sp.simplify(sum(self.b) - 1) != 0:
+        if not _negligible(sum(self.b) - 1):
             raise MethodError(located(where, "b", f"weights sum to {sum(self.b)}, they must sum to 1"))
         if self.b_hat is not None:
             if len(self.b_hat) != s:
                 raise MethodError(located(where, "b_hat", f"must have {s} entries to match b"))
-            if sp.simplify(sum(self.b_hat) - 1) != 0:
+            if not _negligible(sum(self.b_hat) - 1):
                 raise MethodError(located(where, "b_hat", "embedded weights must sum to 1"))
         if self.order is not None and self.order < 1:
             raise MethodError(located(where, "order", "must be a positive whole number"))
@@ -95,6 +99,14 @@ class Tableau:
 
         a = np.array([[float(v) for v in row] for row in self.a])
         return a, np.array([float(v) for v in self.b]), np.array([float(v) for v in self.c])
+
+
+def _negligible(value: sp.Expr) -> bool:
+    """Exactly zero, or below DECIMAL_DATA_TOL (rounded decimal data) at 30 digits."""
+    value = sp.nsimplify(value) if value.is_Float else value
+    if value == 0:
+        return True
+    return abs(float(sp.N(value, 30))) <= DECIMAL_DATA_TOL
 
 
 # ---------------------------------------------------------------------------------------------

@@ -203,3 +203,23 @@ def test_targets_lists_the_six_cores():
     assert result.exit_code == 0
     ids = {t["id"] for t in json.loads(result.stdout)}
     assert ids == {"host", "cortex-m4f", "cortex-m3", "cortex-m7", "rv32imac", "rv32imafc"}
+
+
+def test_a_tableau_in_rounded_decimals_keeps_its_stated_order(tmp_path):
+    # Alexander's L-stable SDIRK3 as often printed, to 15-16 digits (gamma = 0.435866521508459,
+    # REFERENCES.md, from memory): its conditions hold only to the digits given.
+    g, c2, b1, b2 = "0.435866521508459", "0.7179332607542295", "1.2084966491760101", \
+        "-0.6443631706844691"
+    tableau = tmp_path / "sdirk3.toml"
+    tableau.write_text(f'name = "decimal sdirk3"\norder = 3\nc = [{g}, {c2}, 1.0]\n'
+                       f"b = [{b1}, {b2}, {g}]\n"
+                       f"a = [[{g}, 0.0, 0.0], [0.2820667392457705, {g}, 0.0], "
+                       f"[{b1}, {b2}, {g}]]\n")
+    result = run("methods", "--tableau", tableau, "--json")
+    assert result.exit_code == 0, result.output
+    (row,) = json.loads(result.stdout)
+    assert row["order"] == 3 and row["kind"] == "diagonally implicit" and row["l_stable"]
+    # ...while a real mistake (a weight off by 1e-3) is still refused.
+    tableau.write_text(tableau.read_text().replace(b2, "-0.6453631706844691", 1))
+    result = run("methods", "--tableau", tableau)
+    assert result.exit_code == 1 and "weights sum" in result.output
