@@ -205,12 +205,15 @@ def newton_allowance(model: Model, method, precision: str, steps: int, xs: np.nd
 
 def cross_check(model: Model, method: Tableau, dt: float, substeps: int, precision: str,
                 ticks: int, inputs: np.ndarray | None = None,
-                accuracy: float = DEFAULT_ACCURACY, options: dict | None = None) -> CrossCheck:
+                accuracy: float = DEFAULT_ACCURACY, options: dict | None = None,
+                csource=None) -> CrossCheck:
     """Build the C and compare it tick by tick with the independent reference.
 
-    options: generation options of implicit methods (newton_iterations, newton_tol, solver).
+    options: generation options of implicit methods (newton_iterations, newton_tol, solver);
+    csource: the already generated C for these arguments, if the caller has it.
     """
-    csource = generate(model, method, dt, substeps, precision, **(options or {}))
+    if csource is None:
+        csource = generate(model, method, dt, substeps, precision, **(options or {}))
     built = build(csource, model)
     u = excitation(model, ticks) if inputs is None else inputs
     u = as_precision(u, precision)
@@ -284,17 +287,27 @@ def fitted_order(steps, errors) -> float:
 EXACT_AGREEMENT = 1e-10
 
 
+def _end_error(run: reference.Trajectory, n: int, exact: np.ndarray) -> float:
+    """Max |x(T) - exact| of a run of n steps, or inf when it did not finish."""
+    return float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n else float("inf")
+
+
+def _c_end_errors(model, method, u, horizon, exact, steps, options, progress, what) -> list:
+    """End errors of the C build (double) with n steps over the horizon, for each n in steps."""
+    errors = []
+    for n in steps:
+        if progress:
+            progress(f"{what}: C build with {n} steps over {horizon:.3g} s")
+        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})), model)
+        errors.append(_end_error(run_c(built, model, np.repeat(u[None, :], n, axis=0)), n, exact))
+    return errors
+
+
 def _exact_study(model, method, u, horizon, exact, scale, options, progress) -> OrderStudy:
     """For an exact discretization: the error must stay at rounding level at every step size."""
     steps = (2, 4, 8)
-    c_errors = []
-    for n in steps:
-        if progress:
-            progress(f"exactness: C build with {n} steps over {horizon:.3g} s")
-        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})), model)
-        run = run_c(built, model, np.repeat(u[None, :], n, axis=0))
-        c_errors.append(float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n
-                        else float("inf"))
+    c_errors = _c_end_errors(model, method, u, horizon, exact, steps, options, progress,
+                             "exactness")
     passed = all(e <= EXACT_AGREEMENT * scale for e in c_errors)
     return OrderStudy(None, horizon, steps, tuple(c_errors), (), None, bool(passed),
                       "exact discretization: error at the reference's tolerance at every step "
@@ -321,8 +334,8 @@ def measure_order(model: Model, method: Tableau, expected: int | None = None,
     steps, ref_errors = [], []
     for level in range(1, ORDER_MAX_LEVELS + 1):
         n = 2 ** level
-        run = reference.run(model, method, horizon / n, 1, np.repeat(u[None, :], n, axis=0))
-        err = float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n else float("inf")
+        err = _end_error(reference.run(model, method, horizon / n, 1,
+                                       np.repeat(u[None, :], n, axis=0)), n, exact)
         steps.append(n)
         ref_errors.append(err)
         if np.isfinite(err) and err < floor * scale:
@@ -338,15 +351,8 @@ def measure_order(model: Model, method: Tableau, expected: int | None = None,
                           "non-smooth (Piecewise, abs, min/max) or badly scaled")
     idx = idx[-3:]
     chosen = [steps[i] for i in idx]
-    c_errors = []
-    for n in chosen:
-        if progress:
-            progress(f"order study: C build with {n} steps over {horizon:.3g} s")
-        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})),
-                      model)
-        run = run_c(built, model, np.repeat(u[None, :], n, axis=0))
-        c_errors.append(float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n
-                        else float("inf"))
+    c_errors = _c_end_errors(model, method, u, horizon, exact, chosen, options, progress,
+                             "order study")
     if not all(np.isfinite(c_errors)) or min(c_errors) <= 0:
         return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
                           tuple(ref_errors[i] for i in idx), None, False,
@@ -367,15 +373,15 @@ def check(model: Model, method: Tableau, dt: float, substeps: int = 1,
     """
     say = progress or (lambda msg: None)
     say("strict compile")
+    sources = {p: generate(model, method, dt, substeps, p, **(options or {})) for p in precisions}
     command = ""
-    for precision in precisions:
-        command = strict_compile(generate(model, method, dt, substeps, precision,
-                                          **(options or {})))
+    for csource in sources.values():
+        command = strict_compile(csource)
     crosses = []
-    for precision in precisions:
+    for precision, csource in sources.items():
         say(f"cross-check ({precision}): build and run {ticks} ticks")
         crosses.append(cross_check(model, method, dt, substeps, precision, ticks, inputs,
-                                   accuracy, options))
+                                   accuracy, options, csource))
     study = None
     if order:
         say("order study")
