@@ -443,8 +443,7 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
     else:
         advance = [dict(doc=doc, signature=signature,
                         body=advance_body(step, names, decl, inner, step_name))]
-    ctx["constants"] = _unique(constants)
-    ctx["constant_width"] = max((len(c["name"]) for c in ctx["constants"]), default=0)
+    ctx["constants"] = constants
     ctx["functions"] = [
         reset_function(step, names, printer),
         rates_function(step, names, printer),
@@ -516,13 +515,6 @@ def error_estimate_functions(step: StepProgram, names: Names, body: list[str],
     ]
 
 
-def _unique(constants: list) -> list:
-    seen = {}
-    for c in constants:
-        seen.setdefault(c["name"], c)
-    return list(seen.values())
-
-
 def cffi_declarations(ctx: dict) -> str:
     """Declarations of the public API in the subset of C that cffi's cdef understands."""
     real, lines = ctx["real"], []
@@ -540,7 +532,15 @@ def cffi_declarations(ctx: dict) -> str:
 
 
 def finish(step: StepProgram, precision: str, ctx: dict) -> CSource:
-    """Render both templates and check the result for stray non-reproducible content."""
+    """Render both templates and check the result for stray non-reproducible content.
+
+    ctx["constants"] may name a coefficient more than once (a stage reuses it); the first wins.
+    """
+    unique: dict = {}
+    for c in ctx["constants"]:
+        unique.setdefault(c["name"], c)
+    ctx = dict(ctx, constants=list(unique.values()),
+               constant_width=max((len(name) for name in unique), default=0))
     header = render("header.h.j2", **ctx)
     source = render("source.c.j2", **ctx)
     for name, text in ((ctx["header"], header), (f"{step.model.name}.c", source)):

@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import sympy as sp
 
-from .emit import (GUARD, STATUS_VAR, CSource, Names, _unique, advance_body, base_context,
+from .emit import (GUARD, STATUS_VAR, CSource, Names, advance_body, base_context,
                    block_lines, coefficient, fail_lines, finish, free_names, grouped,
                    outputs_function, reset_function, sum_of_products,
                    rates_function, unpack_lines)
@@ -567,7 +567,6 @@ def implicit_context(step: ImplicitStep, precision: str) -> dict:
                           f"{names.ctx_t} *tw_ctx)", body=body))
     if model.outputs:
         functions.append(outputs_function(step, names, w.printer))
-    ctx["constants"] = _unique(w.constants)
-    ctx["constant_width"] = max((len(c["name"]) for c in ctx["constants"]), default=0)
+    ctx["constants"] = w.constants
     ctx["functions"] = functions
     return ctx
