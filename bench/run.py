@@ -17,13 +17,14 @@ ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
 from codegen.build import build  # noqa: E402
-from codegen.cost import step_cost  # noqa: E402
+from codegen.advice.cost import step_cost  # noqa: E402
 from codegen.discretize import discretize  # noqa: E402
-from codegen.method import builtin  # noqa: E402
+from codegen.methods import builtin  # noqa: E402
 from codegen.model import load_model  # noqa: E402
 from codegen.pipeline import generate  # noqa: E402
 from codegen.simplify import simplify  # noqa: E402
-from codegen.verify import excitation, run_c  # noqa: E402
+from codegen.run import run_c  # noqa: E402
+from codegen.verify import excitation  # noqa: E402
 
 CASES = [("heater.toml", 0.5), ("axis.toml", 1e-4)]
 METHODS = ["euler", "rk4", "dp5"]

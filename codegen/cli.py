@@ -89,35 +89,15 @@ def generation_options(method, newton_iterations, newton_tol, linear_solve) -> d
 
 
 def resolve_method(method_id: str | None, tableau_file: Path | None):
-    from .method import builtin, load_tableau
+    from .methods import builtin, load_tableau
 
     if method_id and tableau_file:
         raise click.UsageError("give either --method or --tableau, not both")
     if tableau_file:
-        tableau = load_tableau(tableau_file)
-        return with_order(tableau)
+        return load_tableau(tableau_file)
     if not method_id:
         raise click.UsageError("missing --method NAME (or --tableau FILE); see 'tickwright methods'")
     return builtin(method_id)
-
-
-def with_order(tableau):
-    """Fill in the order of a user tableau from the order conditions, or check the stated one.
-
-    A stated order that holds only to rounded-decimal accuracy (DECIMAL_DATA_TOL) is accepted.
-    """
-    import dataclasses
-
-    from .analysis import DECIMAL_DATA_TOL, order_of
-
-    found = order_of(tableau)
-    if tableau.order is not None and tableau.order > found:
-        found = max(found, min(order_of(tableau, tol=DECIMAL_DATA_TOL), tableau.order))
-    if tableau.order is not None and tableau.order != found:
-        raise MethodError(f"{tableau.origin or tableau.id}: order: states {tableau.order} but the "
-                          f"order conditions give {found}; fix the coefficients or the stated "
-                          "order")
-    return dataclasses.replace(tableau, order=found)
 
 
 def load(model_path: Path):
@@ -251,7 +231,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
                        progress=say, accuracy=tolerance, options=options)
     passed = report.passed
     if error_estimate:
-        from .advise import check_error_estimate
+        from .verify.estimate import check_error_estimate
 
         estimates = []
         for p in precisions:
@@ -261,7 +241,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
         report.extras["error_estimate"] = [dict(e.__dict__) for e in estimates]
         passed = passed and all(e.passed for e in estimates)
     if plot_dir:
-        from .plots import check_pictures
+        from .report.plots import check_pictures
 
         say(f"pictures into {plot_dir}")
         paths = check_pictures(model, method, dt, substeps, precisions, ticks, report, plot_dir,
@@ -476,14 +456,14 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
 
 def method_rows(tableau_file: Path | None):
     """One row per method (or the tableau file's): the analysis of every method kind."""
-    from .advise import method_report
-    from .method import builtin, builtin_ids, load_tableau
+    from .methods import builtin, builtin_ids, load_tableau
+    from .methods.analysis import analyse
 
-    methods = [with_order(load_tableau(tableau_file))] if tableau_file else \
+    methods = [load_tableau(tableau_file)] if tableau_file else \
         [builtin(i) for i in builtin_ids()]
     rows = []
     for m in methods:
-        report = method_report(m)
+        report = analyse(m)
         r_inf = report.r_infinity
         rows.append({
             "id": m.id, "name": m.name, "stages": report.stages, "order": report.order,
@@ -556,7 +536,7 @@ def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, 
 
     Exit status 1 when --dt is given and is unstable for the chosen method.
     """
-    from .advise import advise as run_advice, candidates
+    from .advice import advise as run_advice, candidates
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file) if (method_id or tableau_file) else None
@@ -565,7 +545,7 @@ def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, 
     pool = candidates()
     advice = run_advice(model, method, dt, tolerance, margin, horizon, methods=pool, progress=say)
     if plot_dir:
-        from .plots import advice_pictures
+        from .report.plots import advice_pictures
 
         known = {m.id: m for m in pool}
         if method is not None:
@@ -636,9 +616,9 @@ DEMO_DT = 2e-4
 @guarded
 def demo(out_dir):
     """Run the whole job on the bundled demo model: emit, build, cross-check, report."""
-    from .cost import step_cost
+    from .advice.cost import step_cost
     from .discretize import discretize
-    from .method import builtin
+    from .methods import builtin
     from .model import load_model
     from .pipeline import generate
     from .resources import examples_dir

@@ -8,8 +8,9 @@ _PACKAGE = Path(__file__).resolve().parent
 
 
 def data_dir(name: str) -> Path:
-    """The folder ``templates`` or ``targets``: installed copy first, then the source checkout."""
-    for candidate in (_PACKAGE / name, _PACKAGE.parent / name):
+    """The folder ``templates``, ``targets`` or ``examples``: the installed copy (package data under
+    ``codegen/data``) first, then the source checkout."""
+    for candidate in (_PACKAGE / "data" / name, _PACKAGE.parent / name):
         if candidate.is_dir():
             return candidate
     raise FileNotFoundError(f"tickwright installation is missing its '{name}' folder")

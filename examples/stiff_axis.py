@@ -21,10 +21,10 @@ sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from codegen import reference  # noqa: E402
 from codegen.build import build  # noqa: E402
-from codegen.method import builtin  # noqa: E402
+from codegen.methods import builtin  # noqa: E402
 from codegen.model import load_model  # noqa: E402
 from codegen.pipeline import generate  # noqa: E402
-from codegen.verify import run_c  # noqa: E402
+from codegen.run import run_c  # noqa: E402
 
 TICK = 1e-3
 TICKS = 300

@@ -16,15 +16,18 @@ import sympy as sp
 from click.testing import CliRunner
 from scipy.optimize import brentq
 
-from codegen import advise
+from codegen.advice import recommend as advice_mod
+from codegen.advice import envelope as envelope_mod
+from codegen.verify import estimate as estimate_mod
 from codegen.build import build
 from codegen.cli import main
-from codegen.method import builtin, builtin_ids
+from codegen.methods import builtin, builtin_ids
 from codegen.model import Input, Parameter, State, define, load_model
 from codegen.pipeline import generate
 from codegen.reference import high_accuracy
 from codegen.resources import examples_dir
-from codegen.verify import excitation, run_c
+from codegen.run import run_c
+from codegen.verify import excitation
 
 IMPLICIT_KINDS = ("diagonally implicit", "fully implicit", "linearly implicit")
 
@@ -65,7 +68,7 @@ def dp5(z):
 
 
 def test_linear_model_eigenvalues_are_the_closed_form_ones():
-    values, warnings = advise.eigenvalues(linear_model())
+    values, warnings = envelope_mod.eigenvalues(linear_model())
     expected = sorted([-FAST + 0j, pair(), pair().conjugate()], key=lambda v: (v.real, v.imag))
     assert warnings == []
     assert np.allclose(values, expected, rtol=1e-12)
@@ -73,8 +76,8 @@ def test_linear_model_eigenvalues_are_the_closed_form_ones():
 
 @pytest.mark.parametrize("method_id, R", [("euler", taylor(1)), ("rk4", taylor(4)), ("dp5", dp5)])
 def test_max_stable_dt_matches_the_analytic_value(method_id, R):
-    values, _ = advise.eigenvalues(linear_model())
-    got = advise.max_stable_dt(builtin(method_id), values)
+    values, _ = envelope_mod.eigenvalues(linear_model())
+    got = advice_mod.max_stable_dt(builtin(method_id), values)
     # Euler on the real axis: h = 2/1000 (HNW I IV.2 [mem]); on the pair |1 + h lambda| = 1 gives
     # h = -2 Re(lambda)/|lambda|^2 in closed form (common practice, no source).
     expected = min(ray_limit(R, -FAST), ray_limit(R, pair()))
@@ -93,14 +96,14 @@ def test_a_stable_methods_are_unbounded_and_growing_modes_are_left_out():
     # A-stable: |R| <= 1 on the whole left half plane (HW IV.3, REFERENCES.md [mem]).
     for method_id in ("backward-euler", "sdirk2", "radau-iia3", "ros2", "zoh-exact"):
         if method_id in builtin_ids():
-            assert advise.max_stable_dt(builtin(method_id), values) == math.inf
-    assert list(advise.decaying(np.array([2.0, -1.0]))) == [-1.0]
+            assert advice_mod.max_stable_dt(builtin(method_id), values) == math.inf
+    assert list(envelope_mod.decaying(np.array([2.0, -1.0]))) == [-1.0]
 
 
 def test_envelope_of_the_heater_spans_its_time_constants():
     model = load_model(examples_dir() / "heater.toml")
-    points, ranged = advise.envelope(model)
-    values, _ = advise.eigenvalues(model, points)
+    points, ranged = envelope_mod.envelope(model)
+    values, _ = envelope_mod.eigenvalues(model, points)
     # One state: lambda = -1/(R_th C_th) with C_th over its range 80..200 J/K and R_th = 2.5 K/W.
     assert ranged == ["states.T", "inputs.duty", "parameters.C_th"]
     assert math.isclose(values.real.min(), -1 / (2.5 * 80), rel_tol=1e-12)
@@ -109,9 +112,9 @@ def test_envelope_of_the_heater_spans_its_time_constants():
 
 
 def test_nice_floor_rounds_down_to_timer_friendly_ticks():
-    assert advise.nice_floor(0.93e-3) == 8e-4
-    assert advise.nice_floor(1e-3) == 1e-3
-    assert advise.nice_floor(0.0149) == 0.0125
+    assert advice_mod.nice_floor(0.93e-3) == 8e-4
+    assert advice_mod.nice_floor(1e-3) == 1e-3
+    assert advice_mod.nice_floor(0.0149) == 0.0125
 
 
 def nonlinear_stiff_model():
@@ -132,18 +135,18 @@ def c_error(model, method_id, dt, precision, horizon):
     built = build(generate(model, method, dt, 1, precision), model)
     run = run_c(built, model, u)
     exact = high_accuracy(model, dt, u)
-    scales = advise.state_scales(model, exact.xs)
+    scales = advice_mod.state_scales(model, exact.xs)
     return run.completed == n, float(np.nanmax(np.abs(run.xs - exact.xs) / scales))
 
 
 def test_stiff_model_recommends_an_implicit_method_with_implicit_candidates():
-    from codegen.analysis_data import IMPLICIT_TABLEAUX
-    from codegen.method import tableau_from_data
+    from codegen.methods.data import IMPLICIT_TABLEAUX
+    from codegen.methods import tableau_from_data
 
     model = nonlinear_stiff_model()
     pool = [builtin(i) for i in ("euler", "rk4", "dp5")] + [
         tableau_from_data(IMPLICIT_TABLEAUX[i], "test", i) for i in ("backward-euler", "sdirk2")]
-    advice = advise.advise(model, methods=pool, tolerance=1e-3)
+    advice = advice_mod.advise(model, methods=pool, tolerance=1e-3)
     kinds = {r.id: r.kind for r in advice.methods}
     assert kinds[advice.recommended["method"]] in IMPLICIT_KINDS
     # The explicit ones are held to the fast sensor's limit, about 2.8/1e4 s for RK4 (REFERENCES.md).
@@ -154,7 +157,7 @@ def test_stiff_model_recommends_an_implicit_method_with_implicit_candidates():
 def test_stiff_model_recommends_an_implicit_method_and_its_c_meets_the_tolerance():
     model = nonlinear_stiff_model()
     tolerance = 1e-3
-    advice = advise.advise(model, tolerance=tolerance)
+    advice = advice_mod.advise(model, tolerance=tolerance)
     rec = advice.recommended
     assert advice.row(rec["method"]).kind in IMPLICIT_KINDS
     completed, error = c_error(model, rec["method"], rec["dt"], rec["precision"], advice.horizon)
@@ -165,7 +168,7 @@ def test_heater_recommendation_runs_stable_in_c_and_meets_the_tolerance():
     model = load_model(examples_dir() / "heater.toml")
     tolerance = 1e-3
     explicit = [builtin(i) for i in ("euler", "heun", "rk4", "bs3")]
-    advice = advise.advise(model, tolerance=tolerance, methods=explicit)
+    advice = advice_mod.advise(model, tolerance=tolerance, methods=explicit)
     rec = advice.recommended
     assert rec["dt"] <= advice.margin * advice.row(rec["method"]).max_stable_dt
     completed, error = c_error(model, rec["method"], rec["dt"], rec["precision"], advice.horizon)
@@ -183,20 +186,20 @@ def test_float_roundoff_estimate_bounds_the_measured_float_error_and_picks_doubl
     u = excitation(model, n)
     runs = {p: run_c(build(generate(model, method, dt, 1, p), model), model, u) for p in
             ("float", "double")}
-    scales = advise.state_scales(model)
+    scales = advice_mod.state_scales(model)
     measured = float(np.max(np.abs(runs["float"].xs - runs["double"].xs) / scales))
-    bound = advise.roundoff(method, n, "float", bound=True)
+    bound = advice_mod.roundoff(method, n, "float", bound=True)
     # float32 unit roundoff 2^-24 per rounding (IEEE 754; common practice, no source).
     # The float build really rounds, and even the sqrt(N) estimate covers what it lost here.
-    assert 0 < measured <= advise.roundoff(method, n, "float") <= bound
-    assert advise.precision_for(method, n, 1e-3) == "float"
-    assert advise.precision_for(method, n, 1e-7) == "double"
+    assert 0 < measured <= advice_mod.roundoff(method, n, "float") <= bound
+    assert advice_mod.precision_for(method, n, 1e-3) == "float"
+    assert advice_mod.precision_for(method, n, 1e-7) == "double"
 
 
 def test_requested_dt_beyond_the_limit_warns_how_far():
     model = load_model(examples_dir() / "axis.toml")
     rk4 = builtin("rk4")
-    advice = advise.advise(model, rk4, dt=2e-3, methods=[rk4])
+    advice = advice_mod.advise(model, rk4, dt=2e-3, methods=[rk4])
     # RK4's real-axis limit 2.785293563 (REFERENCES.md) over the fastest eigenvalue.
     fastest = float(np.max(np.abs(advice.eigenvalues)))
     assert math.isclose(advice.chosen_max_stable_dt, 2.785293563 / fastest, rel_tol=1e-6)
@@ -289,7 +292,7 @@ def test_default_output_has_no_error_estimate_and_is_unchanged_by_the_option_off
 @pytest.mark.parametrize("precision", ["float", "double"])
 def test_c_error_estimate_equals_the_reference_embedded_difference(method_id, precision):
     model = load_model(examples_dir() / "axis.toml")
-    result = advise.check_error_estimate(model, builtin(method_id), 2e-4, 2, precision, 60)
+    result = estimate_mod.check_error_estimate(model, builtin(method_id), 2e-4, 2, precision, 60)
     assert result.passed, result
     assert result.largest_estimate > 0
 
@@ -310,7 +313,7 @@ def test_c_error_estimate_scales_like_h_to_the_embedded_order_plus_one(method_id
         ctx.i, ctx.w, ctx.x, ctx.V = *x0, 6.0
         err = ffi.new("axis_real_t *")
         assert lib.axis_advance_with_error(ctx, err) == lib.AXIS_OK
-        _, expected = advise.embedded_estimate(model, method, 0.0, np.array(x0), np.array([6.0]), h)
+        _, expected = estimate_mod.embedded_estimate(model, method, 0.0, np.array(x0), np.array([6.0]), h)
         assert math.isclose(err[0], expected, rel_tol=1e-6)
         estimates.append(err[0])
     slopes = np.log2(np.array(estimates[:-1]) / np.array(estimates[1:]))
@@ -333,7 +336,7 @@ def test_the_recommendation_can_always_be_generated(name):
     from codegen.pipeline import generate
 
     model = load_model(examples_dir() / f"{name}.toml")
-    advice = advise.advise(model, tolerance=1e-3)
+    advice = advice_mod.advise(model, tolerance=1e-3)
     rec = advice.to_dict()["recommended"]
     csource = generate(model, builtin(rec["method"]), rec["dt"], precision=rec["precision"])
     assert csource.files

@@ -7,6 +7,8 @@ HNW = Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., 1993; HW = Hairer & Wan
 
 from __future__ import annotations
 
+import dataclasses
+
 import math
 
 import mpmath
@@ -14,10 +16,11 @@ import numpy as np
 import pytest
 import sympy as sp
 
-from codegen import analysis
-from codegen.analysis import Z
-from codegen.analysis_data import IMPLICIT_TABLEAUX, ROUNDED_DATA_TOL, SDIRK3_GAMMA
-from codegen.method import builtin, builtin_ids, exact, tableau_from_data
+from codegen.methods import analysis
+from codegen.methods.analysis import Z
+from codegen.errors import MethodError
+from codegen.methods.data import IMPLICIT_TABLEAUX, SDIRK3_GAMMA, SDIRK3_TOL
+from codegen.methods import builtin, builtin_ids, exact, tableau_from_data
 
 
 def implicit(method_id):
@@ -126,8 +129,7 @@ def test_implicit_set_is_complete():
 @pytest.mark.parametrize("method_id", sorted(IMPLICIT_ORDERS))
 def test_order_of_implicit_methods(method_id):
     tableau = implicit(method_id)
-    tol = ROUNDED_DATA_TOL.get(method_id, 0.0)
-    assert analysis.order_of(tableau, tol=tol) == IMPLICIT_ORDERS[method_id]
+    assert analysis.order_of(tableau) == IMPLICIT_ORDERS[method_id]
     assert tableau.order == IMPLICIT_ORDERS[method_id]
 
 
@@ -150,9 +152,10 @@ def test_sdirk3_rounded_gamma_needs_the_tolerance():
     # The data are a 40-digit rounding, so the conditions that pin gamma hold only to ~1e-40:
     # exact arithmetic must say so, and a tolerance must recover the published order 3.
     sdirk3 = implicit("sdirk3")
-    assert analysis.order_of(sdirk3) < 3
-    assert analysis.order_of(sdirk3, tol=1e-30) == 3
-    assert analysis.order_of(sdirk3, tol=1e-30, max_order=3) == 3
+    assert sdirk3.tolerance == SDIRK3_TOL
+    assert analysis.order_of(dataclasses.replace(sdirk3, tolerance=0.0)) < 3
+    assert analysis.order_of(sdirk3) == 3
+    assert analysis.order_of(sdirk3, max_order=3) == 3
 
 
 def test_wrong_coefficient_is_detected():
@@ -177,12 +180,12 @@ def test_tiny_error_in_a_coefficient_is_not_rounded_away():
     assert analysis.order_of(rk4) == 4
     assert analysis.order_of(tableau) == 2
     # With a tolerance the perturbation is accepted and the order-4 conditions hold to 1e-45 too.
-    assert analysis.order_of(tableau, tol=1e-30) == 4
+    assert analysis.order_of(dataclasses.replace(tableau, tolerance=1e-30)) == 4
 
 
 def test_order_of_respects_max_order_and_weights_length():
     assert analysis.order_of(builtin("dp5"), max_order=3) == 3
-    with pytest.raises(Exception):
+    with pytest.raises(MethodError, match="weights: must have 4 entries"):
         analysis.order_of(builtin("rk4"), weights=(1, 0))
 
 
@@ -298,7 +301,7 @@ IMPLICIT_FLAGS = {
 
 @pytest.mark.parametrize("method_id", sorted(IMPLICIT_FLAGS))
 def test_implicit_stability_flags(method_id):
-    report = analysis.analyse(implicit(method_id), tol=ROUNDED_DATA_TOL.get(method_id, 0.0))
+    report = analysis.analyse(implicit(method_id))
     a_stable, r_inf, l_stable = IMPLICIT_FLAGS[method_id]
     assert report.a_stable is a_stable
     assert report.r_infinity == r_inf
@@ -334,14 +337,14 @@ def test_pole_in_left_half_plane_is_not_a_stable():
 
 def test_ros2_and_rosenbrock_euler():
     # Rosenbrock-Euler: R = 1/(1 - z) (HW IV.7 [mem]); A- and L-stable (REFERENCES.md).
-    assert sp.simplify(analysis.rosenbrock_stability_function("rosenbrock-euler") - 1 / (1 - Z)) == 0
+    assert sp.simplify(analysis.rosenbrock_stability_function(builtin("rosenbrock-euler")) - 1 / (1 - Z)) == 0
     # ROS2, gamma = 1 + 1/sqrt(2): A- and L-stable, R(inf) = 0 (REFERENCES.md; Verwer et al. 1999).
     for method_id in ("rosenbrock-euler", "ros2"):
-        report = analysis.rosenbrock_stability_report(method_id)
+        report = analysis.rosenbrock_stability_report(builtin(method_id))
         assert report.a_stable and report.l_stable and report.r_infinity == 0
     # One ROS2 step on y' = lambda y written out from the scheme of Verwer, Spee, Blom & Hundsdorfer
     # 1999: (I - g h J) k1 = f(y), (I - g h J) k2 = f(y + h k1) - 2 k1, y1 = y + 3/2 h k1 + 1/2 h k2.
-    r = analysis.rosenbrock_stability_function("ros2")
+    r = analysis.rosenbrock_stability_function(builtin("ros2"))
     g = 1 + 1 / math.sqrt(2)
     for lam, h in ((-3.0 + 1j, 0.1), (-50.0, 0.3), (2j, 0.7)):
         k1 = lam / (1 - g * h * lam)
@@ -353,7 +356,7 @@ def test_ros2_and_rosenbrock_euler():
 
 
 def test_exact_propagator_report():
-    report = analysis.analyse_exact()
+    report = analysis.analyse_exact(builtin("zoh-exact"))
     # |exp(z)| = exp(Re z) <= 1 exactly on Re z <= 0 (common practice, no source).
     assert report.a_stable and report.l_stable and report.order is None
     assert report.real_axis_limit is None and report.imag_axis_limit is None
@@ -461,7 +464,7 @@ def test_report_as_dict_is_plain_data():
 
 
 def test_max_stable_dt_takes_every_method_kind():
-    from codegen.method import builtin
+    from codegen.methods import builtin
 
     # Rosenbrock-Euler has R = 1/(1 - z) (A-stable): no limit for decaying modes; the exact
     # discretization is stable exactly where Re(h lambda) <= 0 (common practice, no source).

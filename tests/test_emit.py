@@ -12,7 +12,7 @@ import pytest
 from codegen.build import strict_compile
 from codegen.emit import GENERATED_MARKER, comment_text
 from codegen.errors import EmitError
-from codegen.method import EXPLICIT, builtin, builtin_ids
+from codegen.methods import EXPLICIT, builtin, builtin_ids
 from codegen.model import load_model
 from codegen.pipeline import generate
 
@@ -65,7 +65,7 @@ def test_emitting_twice_gives_identical_bytes(axis):
 
 def test_output_does_not_depend_on_the_hash_seed():
     # sympy's cse with order='none' and any set iteration could depend on hashing (SCALING.md).
-    script = ("from codegen.model import load_model; from codegen.method import builtin; "
+    script = ("from codegen.model import load_model; from codegen.methods import builtin; "
               "from codegen.pipeline import generate; import sys; "
               "c = generate(load_model('examples/axis.toml'), builtin('rk4'), 1e-4); "
               "sys.stdout.write(c.files[1][1])")

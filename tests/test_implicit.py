@@ -19,13 +19,14 @@ from scipy.signal import cont2discrete
 
 from codegen import reference
 from codegen.build import build, strict_compile
-from codegen.cli import with_order
+from codegen.methods import with_order
 from codegen.errors import MethodError, ModelError
-from codegen.implicit import DENSE_LU, ELIMINATION, INVERSE, discretize_implicit, jacobian
-from codegen.method import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_tableau)
+from codegen.discretize import DENSE_LU, ELIMINATION, INVERSE, discretize_implicit, jacobian
+from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_tableau)
 from codegen.model import Input, Parameter, State, define
 from codegen.pipeline import generate
-from codegen.verify import check, run_c
+from codegen.run import run_c
+from codegen.verify import check
 
 from conftest import EXAMPLES, ROOT
 
@@ -505,7 +506,7 @@ def test_emitting_twice_gives_identical_bytes(axis):
 
 
 def test_output_does_not_depend_on_the_hash_seed():
-    script = ("import sys; from codegen.model import load_model; from codegen.method import builtin;"
+    script = ("import sys; from codegen.model import load_model; from codegen.methods import builtin;"
               "from codegen.pipeline import generate; m = load_model(sys.argv[1]);"
               "c = generate(m, builtin('radau-iia3'), 1e-3); sys.stdout.write(c.text('axis.c'))")
     outputs = set()

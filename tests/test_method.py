@@ -7,7 +7,7 @@ import pytest
 import sympy as sp
 
 from codegen.errors import MethodError
-from codegen.method import (BUILTIN_TABLEAUX, EXPLICIT, Tableau, builtin, builtin_ids, exact,
+from codegen.methods import (BUILTIN_TABLEAUX, EXPLICIT, Tableau, builtin, builtin_ids, exact,
                              load_tableau)
 
 EXPLICIT_IDS = ["euler", "midpoint", "heun", "ralston2", "kutta3", "ssprk3", "rk4", "rk4-38",
@@ -58,7 +58,7 @@ def test_bs3_matches_scipy_rk23_exactly():
 
 def test_rk4_one_step_is_the_taylor_polynomial_on_linear_problems():
     # REFERENCES.md: one RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial.
-    from codegen.reference import explicit_step
+    from codegen.reference.steppers import explicit_step
 
     A = np.array([[-2.0, 1.0], [0.5, -3.0]])
     x0 = np.array([1.0, -0.5])

@@ -27,11 +27,12 @@ def wheel(tmp_path_factory):
 
 def test_wheel_ships_templates_targets_and_examples(wheel):
     names = zipfile.ZipFile(wheel).namelist()
-    for needed in ("codegen/templates/source.c.j2", "codegen/templates/header.h.j2",
-                   "codegen/templates/macros.j2", "codegen/examples/heater.toml",
-                   "codegen/examples/axis.toml", "codegen/cli.py"):
+    for needed in ("codegen/data/templates/source.c.j2", "codegen/data/templates/header.h.j2",
+                   "codegen/data/templates/macros.j2", "codegen/data/examples/heater.toml",
+                   "codegen/data/examples/axis.toml", "codegen/data/targets/host.toml",
+                   "codegen/methods/analysis.py", "codegen/cli.py"):
         assert needed in names, needed
-    assert any(n.startswith("codegen/targets/") and n.endswith(".toml") for n in names)
+    assert any(n.startswith("codegen/data/targets/") and n.endswith(".toml") for n in names)
     assert not any(n.startswith("tests/") for n in names)
 
 

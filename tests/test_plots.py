@@ -12,9 +12,9 @@ pytest.importorskip("matplotlib")
 
 import matplotlib.image  # noqa: E402
 
-from codegen import plots  # noqa: E402
+from codegen.report import plots  # noqa: E402
 from codegen.cli import main  # noqa: E402
-from codegen.method import builtin  # noqa: E402
+from codegen.methods import builtin  # noqa: E402
 from codegen.resources import examples_dir  # noqa: E402
 from codegen.verify import OrderStudy  # noqa: E402
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import sympy as sp
 
-from codegen.printer import Printer, literal
+from codegen.emit.printer import Printer, literal
 
 x, y = sp.symbols("x y", real=True)
 

@@ -18,11 +18,13 @@ import pytest
 
 from codegen.emit import CSource
 from codegen.errors import BuildError, TickwrightError
-from codegen.method import builtin, builtin_ids
+from codegen.methods import builtin, builtin_ids
 from codegen.model import load_model
 from codegen.pipeline import generate
 from codegen.resources import targets_dir
-from codegen.targets import (MISRA_DEVIATIONS, check_on_target, compare_runs, host_reference,
+from codegen.emit import MISRA_DEVIATIONS
+from codegen.targets.harness import host_reference
+from codegen.targets import (check_on_target, compare_runs,
                              load_target, load_targets, parse_run, parse_target, stack_usage)
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -324,7 +326,7 @@ def test_corrupted_bit_in_target_output_is_a_mismatch():
 
 
 def _default_rows(m):
-    from codegen.targets import _checked_inputs
+    from codegen.targets.harness import _checked_inputs
 
     return _checked_inputs(m, TICKS, None, "float")
 

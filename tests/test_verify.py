@@ -9,10 +9,11 @@ import pytest
 import sympy as sp
 
 from codegen.build import build
-from codegen.method import EXPLICIT, builtin, builtin_ids
+from codegen.methods import EXPLICIT, builtin, builtin_ids
 from codegen.model import Input, Parameter, State, define, load_model
 from codegen.pipeline import generate
-from codegen.verify import ORDER_TOLERANCE, check, run_c
+from codegen.run import run_c
+from codegen.verify import ORDER_TOLERANCE, check
 
 from conftest import DEMO_MODELS
 
@@ -130,7 +131,8 @@ def test_cross_check_catches_a_wrong_coefficient(heater):
     bad = replace(good, b=(sp.Rational(1, 6) + sp.Rational(1, 1000), sp.Rational(1, 3) -
                            sp.Rational(1, 1000), sp.Rational(1, 3), sp.Rational(1, 6)))
     from codegen import reference
-    from codegen.verify import as_precision, excitation
+    from codegen.run import as_precision
+    from codegen.verify import excitation
 
     model = heater
     u = excitation(model, 100)

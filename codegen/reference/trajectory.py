@@ -1,12 +1,4 @@
-"""The independent Python reference: the same method, run with numpy straight from the model.
-
-It shares nothing with the generated code path: f comes from sympy's lambdify of the model's own
-expressions (no CSE, no C printer), and the step is a generic tableau loop in float64.
-
-References
-----------
-HNW I, section II.1 (explicit Runge-Kutta step).
-"""
+"""Running the reference over ticks, and the high-accuracy solution the accuracy checks use."""
 
 from __future__ import annotations
 
@@ -14,9 +6,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from .model import Model
-from .numeric import jacobian_function, output_function, rate_function  # noqa: F401 (API)
-from .reference_implicit import stepper as implicit_stepper
+from ..model import Model
+from .numeric import rate_function
+from .steppers import stepper as method_stepper
 
 
 @dataclass(frozen=True)
@@ -28,16 +20,6 @@ class Trajectory:
     completed: int
 
 
-def explicit_step(f, a, b, c, t, x, u, h):
-    """One explicit Runge-Kutta step with a generic tableau loop."""
-    s = len(b)
-    k = np.zeros((s, len(x)))
-    for i in range(s):
-        y = x + h * (a[i, :i] @ k[:i]) if i else x
-        k[i] = f(t + c[i] * h, y, u)
-    return x + h * (b @ k)
-
-
 def run(model: Model, method, dt: float, substeps: int, inputs: np.ndarray,
         x0: np.ndarray | None = None, parameters: dict[str, float] | None = None,
         stepper=None) -> Trajectory:
@@ -45,15 +27,8 @@ def run(model: Model, method, dt: float, substeps: int, inputs: np.ndarray,
 
     inputs: (n, nu) array; returns the trajectory at every tick boundary.
     """
-    f = rate_function(model, parameters)
-    if stepper is None and not method.is_explicit:  # implicit, Rosenbrock, exact: own module
-        stepper = implicit_stepper(model, method, parameters)
     if stepper is None:
-        a, b, c = method.floats()
-
-        def stepper(t, x, u, h):
-            return explicit_step(f, a, b, c, t, x, u, h)
-
+        stepper = method_stepper(model, method, parameters)
     n = len(inputs)
     x = np.array([s.initial for s in model.states] if x0 is None else x0, dtype=np.float64)
     h = dt / substeps
@@ -92,5 +67,3 @@ def high_accuracy(model: Model, dt: float, inputs: np.ndarray, x0=None, paramete
         x = sol.y[:, -1]
         xs[k + 1] = x
     return Trajectory(ts=ts, xs=xs, completed=n)
-
-

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import CheckError
+from ..errors import CheckError
 
 FORMATS = ("png", "svg")
 # Pixels per inch of PNG output: a readable figure of about 1000 x 700 pixels.
@@ -69,11 +69,11 @@ def stability_region(method, hlambda, path, title: str = "") -> Path:
 
     hlambda: complex points z = h * lambda; the ones outside the region are drawn as crosses.
     """
-    from . import advise, analysis
+    from ..methods import analysis
 
     plt = _pyplot()
     points = np.atleast_1d(np.asarray(hlambda, dtype=complex))
-    report = advise.method_report(method)
+    report = analysis.analyse(method)
     R = report.stability.function
     x_min, x_max, y_max = region_extent(points, report.real_axis_limit, report.imag_axis_limit)
     xr = np.linspace(x_min, x_max, REGION_GRID)
@@ -152,10 +152,11 @@ def trajectories(ts, runs: dict, names, path, title: str = "") -> Path:
 def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: int, report,
                    out_dir, fmt: str = "png") -> list[Path]:
     """The pictures of `tickwright check`: trajectories of the C builds and the convergence plot."""
-    from . import reference
-    from .build import build
-    from .pipeline import generate
-    from .verify import as_precision, excitation, run_c
+    from .. import reference
+    from ..build import build
+    from ..pipeline import generate
+    from ..run import as_precision, run_c
+    from ..verify import excitation
 
     out = Path(out_dir)
     written = []

@@ -1,6 +1,6 @@
-"""Stage 5 for implicit methods: simplified ImplicitStep -> C text, through the same templates.
+"""The emitter of implicit steps: simplified ImplicitStep -> template context.
 
-Reuses emit.py's context and helpers (names, reset/rates/outputs functions, commit). Adds the
+Reuses common.py's context and helpers (names, reset/rates/outputs functions, commit). Adds the
 Jacobian function, the factor and solve functions of the planned linear solve, and an advance
 function that computes into locals and commits to the context only after every check passed:
 a zero or non-finite pivot returns SINGULAR, a Newton iteration that does not meet its
@@ -12,21 +12,12 @@ from __future__ import annotations
 
 import sympy as sp
 
-from .emit import (GUARD, STATUS_VAR, CSource, Names, advance_body, base_context,
-                   block_lines, coefficient, fail_lines, finish, free_names, grouped,
-                   outputs_function, reset_function, sum_of_products,
-                   rates_function, unpack_lines)
-from .errors import EmitError
-from .implicit import DENSE_LU, ELIMINATION, EXACT, G, INVERSE, ImplicitStep, LinearSolve
-from .method import DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
-from .printer import FLOAT, PRECISIONS, Printer
-
-
-def emit_implicit(step: ImplicitStep, precision: str = FLOAT) -> CSource:
-    """Render the header and source for a simplified implicit step."""
-    if precision not in PRECISIONS:
-        raise EmitError(f"--precision: must be one of {', '.join(PRECISIONS)}, got {precision!r}")
-    return finish(step, precision, implicit_context(step, precision))
+from ..discretize import DENSE_LU, ELIMINATION, G, INVERSE, ImplicitStep, LinearSolve
+from ..methods import DIAGONALLY_IMPLICIT, EXACT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
+from .common import (Names, advance_body, base_context, block_lines, coefficient,
+                     fail_lines, free_names, grouped, outputs_function, rates_function,
+                     reset_function, sum_of_products, unpack_lines)
+from .printer import FLOAT, Printer
 
 
 class _Writer:

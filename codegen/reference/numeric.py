@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import sympy as sp
 
-from .model import Model
+from ..model import Model
 
 
 def numeric(model: Model, exprs, parameters: dict[str, float] | None = None, shape=None):

@@ -25,9 +25,8 @@ import mpmath
 import numpy as np
 import sympy as sp
 
-from .analysis_data import ROSENBROCK_METHODS
-from .errors import MethodError
-from .method import DECIMAL_DATA_TOL, Tableau, exact  # noqa: F401 (re-exported)
+from ..errors import MethodError
+from .types import EXACT, LINEARLY_IMPLICIT, LinearlyImplicit, Tableau
 
 # The variable of the stability function, z = h * lambda.
 Z = sp.Symbol("z")
@@ -193,14 +192,13 @@ def _mp(value, digits: int = _DIGITS + 10) -> mpmath.mpf:
     return mpmath.mpf(sp.Float(sp.N(value, digits), digits)._mpf_)
 
 
-def order_of(tableau: Tableau, weights=None, max_order: int = 8, tol: float = 0.0) -> int:
+def order_of(tableau: Tableau, weights=None, max_order: int = 8) -> int:
     """The largest p <= max_order such that every order condition of order <= p holds.
 
-    weights replaces b (pass tableau.b_hat for the order of the embedded solution). With tol = 0
-    each condition must hold exactly; data that are themselves rounded (such as a diagonal kept as
-    a 40-digit rational) satisfy their conditions only to about that rounding, so pass tol > 0 to
-    count a condition as satisfied when |Phi(t) - 1/gamma(t)| <= tol. Returns 0 if even
-    sum(b) = 1 fails.
+    weights replaces b (pass tableau.b_hat for the order of the embedded solution). Each condition
+    is decided at the tableau's own tolerance (Tableau.tolerance): exactly for exact data, and as
+    satisfied when |Phi(t) - 1/gamma(t)| <= tolerance for data given in rounded decimals or
+    rounded on purpose. Returns 0 if even sum(b) = 1 fails.
 
     Each condition is first evaluated at 50 digits; one that is clearly not zero fails without
     exact work, one that is numerically zero is confirmed with exact arithmetic.
@@ -209,6 +207,7 @@ def order_of(tableau: Tableau, weights=None, max_order: int = 8, tol: float = 0.
     ----------
     Butcher 1987; HNW I, section II.2, Theorem 2.13 (from memory).
     """
+    tol = tableau.tolerance
     b = tableau.b if weights is None else tuple(weights)
     if len(b) != tableau.stages:
         raise MethodError(f"{tableau.id}: weights: must have {tableau.stages} entries")
@@ -370,16 +369,8 @@ def stability_function(tableau: Tableau) -> sp.Expr:
     return p / q
 
 
-def _rosenbrock_coefficients(method_id: str) -> tuple[tuple, tuple]:
-    if method_id not in ROSENBROCK_METHODS:
-        raise MethodError(f"--method: unknown Rosenbrock method '{method_id}' "
-                          f"(known: {', '.join(ROSENBROCK_METHODS)})")
-    data = ROSENBROCK_METHODS[method_id]
-    where = f"Rosenbrock method {method_id}"
-    gamma = exact(data["gamma"], where, "gamma")
-    alpha = [[exact(v, where, "alpha") for v in row] for row in data["alpha"]]
-    coupling = [[exact(v, where, "coupling") for v in row] for row in data["coupling"]]
-    b = [exact(v, where, "b") for v in data["b"]]
+def _rosenbrock_coefficients(method: LinearlyImplicit) -> tuple[tuple, tuple]:
+    gamma, alpha, coupling, b = method.gamma, method.alpha, method.coupling, method.b
     # On y' = lambda y, with K_i = h k_i / y:
     #   (1 - gamma z) K_i = z (1 + sum_j alpha_ij K_j) + sum_j coupling_ij K_j.
     stage_values = []
@@ -392,10 +383,10 @@ def _rosenbrock_coefficients(method_id: str) -> tuple[tuple, tuple]:
     return _reduce(_coeffs(num), _coeffs(den))
 
 
-def rosenbrock_stability_function(method_id: str) -> sp.Expr:
-    """R(z) of a built-in Rosenbrock method ('rosenbrock-euler' or 'ros2'), exact.
+def rosenbrock_stability_function(method: LinearlyImplicit) -> sp.Expr:
+    """R(z) of a Rosenbrock method, exact.
 
-    Derived by applying the scheme in analysis_data.ROSENBROCK_METHODS to y' = lambda y with
+    Derived by applying the scheme of types.LinearlyImplicit to y' = lambda y with
     J = lambda. Rosenbrock-Euler gives 1/(1 - z); ROS2 gives
     (1 + (1 - 2 gamma) z + (gamma^2 - 2 gamma + 1/2) z^2) / (1 - gamma z)^2, whose z^2 term vanishes
     for gamma = 1 + 1/sqrt(2).
@@ -404,7 +395,7 @@ def rosenbrock_stability_function(method_id: str) -> sp.Expr:
     ----------
     HW, section IV.7 (from memory); Verwer, Spee, Blom & Hundsdorfer 1999, SIAM J. Sci. Comput. 20(4).
     """
-    p, q = _rosenbrock_coefficients(method_id)
+    p, q = _rosenbrock_coefficients(method)
     return _to_expr(p) / _to_expr(q)
 
 
@@ -655,41 +646,54 @@ def stability_report(tableau: Tableau) -> StabilityReport:
     return _stability_report(p, q, tableau.is_explicit)
 
 
-def rosenbrock_stability_report(method_id: str) -> StabilityReport:
-    """Linear stability of a Rosenbrock method from analysis_data.ROSENBROCK_METHODS."""
-    p, q = _rosenbrock_coefficients(method_id)
+def rosenbrock_stability_report(method: LinearlyImplicit) -> StabilityReport:
+    """Linear stability of a Rosenbrock method."""
+    p, q = _rosenbrock_coefficients(method)
     return _stability_report(p, q, explicit=False)
 
 
-def analyse(tableau: Tableau, tol: float = 0.0) -> MethodReport:
-    """Order, embedded order, kind and linear stability of a tableau.
+def analyse(method) -> MethodReport:
+    """Order, embedded order, kind and linear stability of any method (cached per method).
 
-    tol is passed to order_of (0: exact order conditions; see order_of for rounded data).
+    Tableaux: order conditions at the tableau's own tolerance and the stability function;
+    Rosenbrock methods: their stated order and stability function; the exact discretization:
+    R = exp(z), no finite order.
 
     References
     ----------
     Butcher 1987 (order conditions); HW, sections IV.2-IV.3 (stability) (from memory).
     """
-    order = order_of(tableau, tol=tol)
-    embedded = order_of(tableau, tableau.b_hat, tol=tol) if tableau.b_hat is not None else None
-    return MethodReport(tableau.id, tableau.name, tableau.stages, order, embedded, tableau.kind,
-                        stability_report(tableau), tableau.source)
+    return _analyse(method)
 
 
-def analyse_exact() -> MethodReport:
+@functools.lru_cache(maxsize=256)
+def _analyse(method) -> MethodReport:
+    if method.kind == EXACT:
+        return analyse_exact(method)
+    if method.kind == LINEARLY_IMPLICIT:
+        return MethodReport(method.id, method.name, method.stages, method.order,
+                            method.embedded_order, method.kind,
+                            rosenbrock_stability_report(method), method.source)
+    order = order_of(method)
+    embedded = order_of(method, method.b_hat) if method.b_hat is not None else None
+    return MethodReport(method.id, method.name, method.stages, order, embedded, method.kind,
+                        stability_report(method), method.source)
+
+
+def analyse_exact(method) -> MethodReport:
     """The exact zero-order-hold propagator of a linear model, R(z) = exp(z).
 
     A-stable (|exp(z)| < 1 for Re z < 0) and L-stable in the sense that R(x) -> 0 as x -> -inf along
-    the real axis; r_infinity reports that limit. No finite order (order None), no stages, no
-    bounded stability limits.
+    the real axis; r_infinity reports that limit. No finite order (order None), no bounded
+    stability limits.
 
     References
     ----------
     Common practice, no source: |exp(z)| = exp(Re z).
     """
     stability = StabilityReport(sp.exp(Z), sp.Integer(1), True, True, sp.Integer(0), None, None)
-    return MethodReport("exact", "exact zero-order hold", 0, None, None, "exact", stability,
-                        "matrix exponential; common practice, no source")
+    return MethodReport(method.id, method.name, method.stages, None, None, method.kind,
+                        stability, method.source)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -733,11 +737,11 @@ def stability_coefficients(method) -> tuple[tuple, tuple] | None:
     A Tableau or a linearly implicit (Rosenbrock) method gives (P, Q); the exact discretization,
     whose R(z) = exp(z) is no rational function, gives None.
     """
-    if isinstance(method, Tableau):
-        return _tableau_polynomials(method)
-    if getattr(method, "kind", "") == "linearly implicit":
-        return _rosenbrock_coefficients(method.id)
-    return None
+    if method.kind == EXACT:
+        return None
+    if method.kind == LINEARLY_IMPLICIT:
+        return _rosenbrock_coefficients(method)
+    return _tableau_polynomials(method)
 
 
 def ray_limit(coefficients: tuple[tuple, tuple], lam: complex) -> float | None:

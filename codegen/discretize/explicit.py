@@ -1,4 +1,4 @@
-"""Stage 3: Model + Method + dt -> StepProgram, the step as straight-line assignments.
+"""Explicit Runge-Kutta steps: Model + Tableau + dt -> StepProgram.
 
 The step program keeps the stages as arrays (one rate evaluation per stage) and the model's rate
 function as one block of assignments, which the simplify stage then reduces with CSE. Substituting
@@ -12,75 +12,12 @@ k_i = f(t0 + c_i h, y0 + h * sum_j a_ij k_j).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import sympy as sp
 
-from .errors import MethodError
-from .method import Tableau
-from .model import Model
-
-
-@dataclass(frozen=True)
-class Assign:
-    """One assignment ``target = expr`` of straight-line code."""
-
-    target: sp.Symbol
-    expr: sp.Expr
-
-
-@dataclass(frozen=True)
-class Block:
-    """Straight-line code: temporaries first, then the results in order.
-
-    inputs: the symbols the block reads; results: (name, expression) pairs it produces.
-    """
-
-    temporaries: tuple[Assign, ...]
-    results: tuple[tuple[str, sp.Expr], ...]
-
-    def operation_count(self) -> int:
-        exprs = [a.expr for a in self.temporaries] + [e for _, e in self.results]
-        return int(sum(sp.count_ops(e, visual=False) for e in exprs))
-
-
-@dataclass(frozen=True)
-class Stage:
-    """Stage i of an explicit step: k_i = f(t + c_i h, x + sum_j (h a_ij) k_j).
-
-    terms holds (j, h*a_ij) for the non-zero a_ij only, as exact values.
-    """
-
-    index: int
-    c: sp.Expr
-    time_offset: sp.Expr
-    terms: tuple[tuple[int, sp.Expr], ...]
-
-
-@dataclass(frozen=True)
-class StepProgram:
-    """The discretized step: what one substep of length h computes, before simplification.
-
-    h = dt / substeps; weights are (j, h*b_j) for the stages that contribute.
-    """
-
-    model: Model
-    method: Tableau
-    dt: sp.Rational
-    substeps: int
-    rates: Block
-    outputs: Block
-    stages: tuple[Stage, ...]
-    weights: tuple[tuple[int, sp.Expr], ...]
-    error_weights: tuple[tuple[int, sp.Expr], ...] = ()
-
-    @property
-    def h(self) -> sp.Rational:
-        return self.dt / self.substeps
-
-    @property
-    def rate_evaluations(self) -> int:
-        return len(self.stages)
+from ..errors import MethodError
+from ..methods import Tableau
+from ..model import Model
+from .ir import Block, Stage, StepProgram
 
 
 def exact_dt(dt) -> sp.Rational:
@@ -116,8 +53,8 @@ def needed_stages(method: Tableau, with_error: bool) -> list[int]:
     return sorted(used)
 
 
-def discretize(model: Model, method: Tableau, dt, substeps: int = 1,
-               error_estimate: bool = False) -> StepProgram:
+def discretize_explicit(model: Model, method: Tableau, dt, substeps: int = 1,
+                        error_estimate: bool = False) -> StepProgram:
     """Build the explicit step program for one substep h = dt / substeps."""
     if not method.is_explicit:
         raise MethodError(f"{method.id}: {method.kind} tableaux need the implicit step generator")

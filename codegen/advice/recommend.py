@@ -27,21 +27,20 @@ regions), IV.7 (Rosenbrock), IV.8 (simplified Newton iterations) (from memory).
 from __future__ import annotations
 
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 
 import numpy as np
 import sympy as sp
 
-from . import analysis
-from .errors import CheckError, ModelError, TickwrightError
-from .implicit import linear_parts as exact_linear_parts
-from .method import Tableau
-from .model import Model
-from .verify import excitation, state_scales
+from ..discretize import linear_parts as exact_linear_parts
+from ..errors import CheckError, ModelError, TickwrightError
+from ..methods import EXACT, EXPLICIT, LINEARLY_IMPLICIT, Tableau
+from ..methods import analysis
+from ..model import Model
+from ..verify.scenario import excitation, state_scales
+from .cost import operations_per_step
+from .envelope import _directions, decaying, eigenvalues, envelope
 
-EXPLICIT = "explicit"
-LINEARLY_IMPLICIT = "linearly implicit"
-EXACT = "exact"
 
 # Default accuracy target: 0.1 % of each state's full scale over the horizon (common practice, no
 # source: a tenth of a percent of full scale is the resolution of a 10-bit converter).
@@ -62,12 +61,6 @@ MAX_STEPS = 2000
 MAX_ATTEMPTS = 5
 # Tick periods are rounded down to these mantissas (times a power of ten), like firmware timers.
 NICE_MANTISSAS = (1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
-# Envelope sampling: all corners up to this many, else this many corners from a Halton sequence.
-MAX_CORNERS = 64
-# Interior points (Halton sequence) besides the centre and the initial point.
-INTERIOR_POINTS = 16
-# An eigenvalue below this fraction of the largest |lambda| is rounding noise of a zero eigenvalue.
-ZERO_EIGENVALUE = 1e-9
 # Simplified Newton on implicit stages: converged when the update is below this relative size.
 NEWTON_TOL = 1e-12
 NEWTON_MAX = 50
@@ -76,210 +69,8 @@ ULPS_PER_STAGE = 4
 EPS = {"float": 2.0 ** -24, "double": 2.0 ** -53}
 
 
-# ---------------------------------------------------------------------------------------------
-# Methods of every kind
-# ---------------------------------------------------------------------------------------------
-
-def method_kind(method) -> str:
-    """explicit / diagonally implicit / fully implicit / linearly implicit / exact."""
-    return getattr(method, "kind", EXPLICIT)
-
-
-def order_tolerance(method) -> float:
-    """Order-condition tolerance for rounded data: built-ins listed as rounded (SDIRK3), and user
-    tableaux (possibly written in decimals); exact built-ins get 0."""
-    from .analysis_data import ROUNDED_DATA_TOL
-
-    if getattr(method, "origin", ""):
-        return analysis.DECIMAL_DATA_TOL
-    return ROUNDED_DATA_TOL.get(getattr(method, "id", ""), 0.0)
-
-
-_REPORTS: dict = {}
-
-
-def method_report(method) -> analysis.MethodReport:
-    """The analysis report of any method kind (cached per method object).
-
-    Tableaux: order conditions and stability function; linearly implicit: the Rosenbrock stability
-    function; exact: R = exp(z).
-    """
-    key = (getattr(method, "id", None), id(method))
-    if key in _REPORTS:
-        return _REPORTS[key]
-    kind = method_kind(method)
-    if isinstance(method, Tableau):
-        report = analysis.analyse(method, tol=order_tolerance(method))
-    elif kind == LINEARLY_IMPLICIT:
-        stability = analysis.rosenbrock_stability_report(method.id)
-        report = analysis.MethodReport(method.id, method.name, method.stages, method.order, None,
-                                       kind, stability, getattr(method, "source", ""))
-    elif kind == EXACT:
-        exact = analysis.analyse_exact()
-        report = analysis.MethodReport(method.id, method.name, getattr(method, "stages", 1), None,
-                                       None, kind, exact.stability, getattr(method, "source", ""))
-    else:
-        raise CheckError(f"{getattr(method, 'id', method)}: method kind '{kind}' cannot be analysed")
-    _REPORTS[key] = report
-    return report
-
-
-def stability_function(method) -> sp.Expr:
-    """R(z) of any method kind, as a sympy expression in analysis.Z."""
-    return method_report(method).stability.function
-
-
-# ---------------------------------------------------------------------------------------------
-# Operating envelope and eigenvalues
-# ---------------------------------------------------------------------------------------------
-
-@dataclass(frozen=True)
-class OperatingPoint:
-    """One point of the envelope: states x, inputs u and every parameter's value."""
-
-    x: tuple[float, ...]
-    u: tuple[float, ...]
-    parameters: tuple[tuple[str, float], ...]
-
-
-def envelope(model: Model) -> tuple[list[OperatingPoint], list[str]]:
-    """Operating points from the ranges, and the names of the ranged quantities.
-
-    The initial point (initial states, default inputs, parameter values) always comes first; with
-    ranges, the centre of the box, its corners (all when there are at most MAX_CORNERS, else a
-    Halton subset) and INTERIOR_POINTS Halton points follow.
-    """
-    base_x = [s.initial for s in model.states]
-    base_u = [u.default for u in model.inputs]
-    base_p = {p.name: float(p.value) for p in model.parameters}
-    dims = [("x", i, q) for i, q in enumerate(model.states) if q.range] + \
-        [("u", i, q) for i, q in enumerate(model.inputs) if q.range] + \
-        [("p", i, q) for i, q in enumerate(model.parameters) if q.range]
-
-    def point(fractions) -> OperatingPoint:
-        x, u, p = list(base_x), list(base_u), dict(base_p)
-        for (where, i, q), f in zip(dims, fractions):
-            value = q.range[0] + f * (q.range[1] - q.range[0])
-            if where == "x":
-                x[i] = value
-            elif where == "u":
-                u[i] = value
-            else:
-                p[q.name] = value
-        return OperatingPoint(tuple(map(float, x)), tuple(map(float, u)),
-                              tuple(sorted((k, float(v)) for k, v in p.items())))
-
-    points = [point([])]
-    d = len(dims)
-    if d:
-        points.append(point([0.5] * d))
-        if 2 ** d <= MAX_CORNERS:
-            corners = [[(k >> j) & 1 for j in range(d)] for k in range(2 ** d)]
-        else:
-            halton = _halton(d, MAX_CORNERS)
-            corners = np.round(halton).tolist()
-        points += [point(c) for c in corners]
-        interior = _halton(d, INTERIOR_POINTS)
-        points += [point(row) for row in interior]
-    names = [f"{'states' if w == 'x' else 'inputs' if w == 'u' else 'parameters'}.{q.name}"
-             for w, _, q in dims]
-    return points, names
-
-
-def _halton(d: int, n: int) -> np.ndarray:
-    """n points of the Halton sequence in [0, 1)^d (prime bases), skipping the origin.
-
-    References
-    ----------
-    Halton 1960, Numer. Math. 2 (from memory): the radical inverse of i in the k-th prime base.
-    """
-    primes, candidate = [], 2
-    while len(primes) < d:
-        if all(candidate % q for q in primes):
-            primes.append(candidate)
-        candidate += 1
-    out = np.zeros((n, d))
-    for i in range(1, n + 1):
-        for j, base in enumerate(primes):
-            value, scale, k = 0.0, 1.0 / base, i
-            while k:
-                k, digit = divmod(k, base)
-                value += digit * scale
-                scale /= base
-            out[i - 1, j] = value
-    return out
-
-
-def _jacobian_with_parameters(model: Model):
-    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
-    psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy")
-    names = [p.name for p in model.parameters]
-
-    def jac(t, x, u, parameters: dict):
-        with np.errstate(all="ignore"):
-            return np.array(fn(t, list(x), list(u), [parameters[n] for n in names]),
-                            dtype=np.float64).reshape(model.nx, model.nx)
-
-    return jac
-
-
-def eigenvalues(model: Model, points=None) -> tuple[np.ndarray, list[str]]:
-    """Distinct eigenvalues of df/dx over the envelope (1/s), sorted, and any warnings.
-
-    Eigenvalues below ZERO_EIGENVALUE times the largest |lambda| are set to exactly 0 (a pure
-    integrator such as a position state); a point whose Jacobian is not finite is skipped.
-    """
-    points = envelope(model)[0] if points is None else points
-    jac = _jacobian_with_parameters(model)
-    found, warnings, skipped = [], [], 0
-    for pt in points:
-        J = jac(0.0, np.array(pt.x), np.array(pt.u), dict(pt.parameters))
-        if not np.all(np.isfinite(J)):
-            skipped += 1
-            continue
-        found.append(np.linalg.eigvals(J))
-    if skipped:
-        warnings.append(f"the Jacobian is not finite at {skipped} of {len(points)} operating "
-                        "points (they were skipped); check the ranges")
-    if not found:
-        raise CheckError(f"{model.source}: the Jacobian is not finite at any operating point; "
-                         "check the ranges and the initial values")
-    lam = np.concatenate(found)
-    big = float(np.max(np.abs(lam))) if lam.size else 0.0
-    lam = np.where(np.abs(lam) <= ZERO_EIGENVALUE * big, 0.0, lam)
-    lam = np.where(np.abs(lam.real) <= ZERO_EIGENVALUE * big, 1j * lam.imag, lam)
-    lam = np.where(np.abs(lam.imag) <= ZERO_EIGENVALUE * big, lam.real + 0j, lam)
-    rounded = {}
-    for v in lam:
-        key = (float(f"{v.real:.9g}"), float(f"{v.imag:.9g}"))
-        rounded.setdefault(key, complex(v))
-    values = np.array(sorted(rounded.values(), key=lambda v: (v.real, v.imag)), dtype=complex)
-    return values, warnings
-
-
-def decaying(values: np.ndarray) -> np.ndarray:
-    """The eigenvalues a stable discretization must damp (Re lambda <= 0)."""
-    return values[values.real <= 0]
-
-
-def _directions(values: np.ndarray) -> np.ndarray:
-    """One eigenvalue per ray direction, the largest: along a ray only the largest |lambda| binds."""
-    best: dict = {}
-    for v in values:
-        if v == 0:
-            continue
-        r = abs(v)
-        key = (round(v.real / r, 12), round(abs(v.imag) / r, 12))
-        if key not in best or r > abs(best[key]):
-            best[key] = v
-    return np.array(list(best.values()), dtype=complex)
-
-
 # Geometric grid of h*|lambda| for the numerical pre-filter of the ray limits.
 _RAY_GRID = np.geomspace(1e-6, 1e4, 4001)
-
-
 def max_stable_dt(method, values, margin: float = 1.0) -> float:
     """Largest h with every h*lambda in the stability region of any method kind (math.inf if none).
 
@@ -291,9 +82,9 @@ def max_stable_dt(method, values, margin: float = 1.0) -> float:
     pq = analysis.stability_coefficients(method)
     if pq is None or values.size == 0:
         return math.inf
-    if method_report(method).a_stable and np.all(values.real <= 0):
+    if analysis.analyse(method).a_stable and np.all(values.real <= 0):
         return math.inf
-    region = stability_function(method)
+    region = analysis.analyse(method).stability.function
     numeric = []
     for lam in values:
         z = _RAY_GRID * lam / abs(lam)
@@ -376,7 +167,7 @@ class Stepper:
     def __init__(self, model: Model, method):
         self.model = model
         self.method = method
-        self.kind = method_kind(method)
+        self.kind = method.kind
         self.f, self.jac = _model_functions(model)
         self.iterations = 0
         self.solves = 0
@@ -575,59 +366,6 @@ def accuracy(model: Model, method, dt: float, horizon: float, scales=None) -> Ac
 # Cost per simulated second
 # ---------------------------------------------------------------------------------------------
 
-def _rate_operations(model: Model) -> tuple[int, int]:
-    """Operations of one rate evaluation and of one Jacobian evaluation (after CSE)."""
-    from .cost import count_block
-    from .discretize import Block, rate_block
-    from .model import INTERNAL_PREFIX
-    from .simplify import cse_block
-
-    f_ops = count_block(cse_block(rate_block(model), INTERNAL_PREFIX + "r")).total
-    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x)).xreplace(model.baked)
-    entries = tuple((f"j{i}", e) for i, e in enumerate(J) if e != 0)
-    j_ops = count_block(cse_block(Block((), entries), INTERNAL_PREFIX + "j")).total
-    return f_ops, j_ops
-
-
-def operations_per_step(model: Model, method, newton_iterations: float | None = None):
-    """(operations of one step, how they were found).
-
-    Explicit tableaux: counted on the generated step program (cost.step_cost). Other kinds are
-    estimated from the rate and Jacobian operation counts: an LU factorization costs 2/3 n^3, a
-    solve 2 n^2 (common practice, no source), times the Newton iterations measured by the
-    numerical model (or 3 assumed when none were measured).
-    """
-    kind = method_kind(method)
-    nx = model.nx
-    if kind == EXPLICIT and isinstance(method, Tableau):
-        from .cost import step_cost
-        from .discretize import discretize
-        from .simplify import simplify
-
-        return step_cost(simplify(discretize(model, method, 1))).total, "counted"
-    f_ops, j_ops = _rate_operations(model)
-    lu = lambda n: (2 * n ** 3) // 3 + n * n
-    solve = lambda n: 2 * n * n
-    iterations = max(1, math.ceil(newton_iterations)) if newton_iterations else 3
-    if kind == EXACT:
-        nu = len(model.inputs)
-        return 2 * nx * (nx + nu + 1), "estimated: one matrix-vector product"
-    s = method.stages
-    if kind == LINEARLY_IMPLICIT:
-        ops = j_ops + lu(nx) + s * (f_ops + solve(nx) + 2 * s * nx)
-        return ops, "estimated: Jacobian, one LU, one solve per stage"
-    a = method.a
-    if kind == "diagonally implicit":
-        diagonals = {a[i][i] for i in range(s) if a[i][i] != 0}
-        implicit_stages = sum(1 for i in range(s) if a[i][i] != 0)
-        ops = j_ops + len(diagonals) * lu(nx) + (s - implicit_stages) * f_ops + \
-            implicit_stages * iterations * (f_ops + solve(nx) + 2 * s * nx) + 2 * s * nx
-        return ops, f"estimated: {iterations} Newton iteration(s) per stage"
-    n = s * nx
-    ops = j_ops + lu(n) + iterations * (s * f_ops + solve(n) + 2 * s * n) + 2 * s * nx
-    return ops, f"estimated: {iterations} Newton iteration(s) on the {n} x {n} stage system"
-
-
 # ---------------------------------------------------------------------------------------------
 # Float or double
 # ---------------------------------------------------------------------------------------------
@@ -736,7 +474,7 @@ def default_horizon(values: np.ndarray) -> float:
 
 def candidates() -> list:
     """Every built-in method, looked up at run time (implicit ones join when they are built in)."""
-    from .method import builtin, builtin_ids
+    from ..methods import builtin, builtin_ids
 
     return [builtin(i) for i in builtin_ids()]
 
@@ -840,7 +578,7 @@ def _find(pool, method_id):
 
 
 def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> MethodAdvice:
-    kind = method_kind(m)
+    kind = m.kind
     limit = max_stable_dt(m, damped)
     note = ""
     acc = None
@@ -873,7 +611,7 @@ def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> Meth
         ops, cost_note = operations_per_step(model, m, iterations)
     except TickwrightError as exc:  # pragma: no cover - every kind has an estimate
         ops, cost_note = 0, str(exc)
-    report = method_report(m)
+    report = analysis.analyse(m)
     row_acc = acc if (acc is not None and dt is not None) else acc
     return MethodAdvice(id=m.id, name=m.name, kind=kind, order=report.order, max_stable_dt=limit,
                         dt=dt, accuracy=row_acc, ops_per_step=ops, cost_note=cost_note, note=note)
@@ -915,9 +653,9 @@ def _binding(method, damped, dt):
     """The eigenvalue whose h*lambda is furthest outside the region (largest |R|)."""
     if damped.size == 0:
         return None
-    from .analysis import Z
+    from ..methods.analysis import Z
 
-    R = sp.lambdify(Z, stability_function(method), modules="numpy")
+    R = sp.lambdify(Z, analysis.analyse(method).stability.function, modules="numpy")
     with np.errstate(all="ignore"):
         mags = np.abs(np.asarray(R(damped * dt), dtype=complex) * np.ones(damped.shape))
     return damped[int(np.nanargmax(mags))]
@@ -951,95 +689,3 @@ def _fmt_complex(v) -> str:
 def as_dict(advice: Advice) -> dict:
     """Plain data for --json."""
     return advice.to_dict()
-
-
-# ---------------------------------------------------------------------------------------------
-# The run-time error estimate of the generated code, checked against this module's model
-# ---------------------------------------------------------------------------------------------
-
-def embedded_estimate(model: Model, method: Tableau, t: float, x, u, dt: float,
-                      substeps: int = 1):
-    """(x after one tick, the tick's error estimate) in float64, as the generated C defines it.
-
-    The estimate is max over substeps and states of |h sum_j (b_j - b_hat_j) k_j| / S_i with S_i
-    the full scale of emit.error_scale (max |range bound|, or 1).
-    """
-    from .emit import error_scale
-
-    scales = np.array([float(error_scale(s)) for s in model.states])
-    stepper = Stepper(model, method)
-    h = dt / substeps
-    worst = 0.0
-    x = np.asarray(x, float)
-    for m in range(substeps):
-        x, err = stepper.step(t + m * h, x, u, h)
-        worst = max(worst, float(np.max(np.abs(err) / scales)))
-    return x, worst
-
-
-@dataclass(frozen=True)
-class EstimateCheck:
-    """The C's run-time error estimate against embedded_estimate, tick by tick."""
-
-    precision: str
-    ticks: int
-    max_difference: float
-    tolerance: float
-    largest_estimate: float
-    passed: bool
-
-    def line(self) -> str:
-        verdict = "ok" if self.passed else "FAIL"
-        return (f"{'error estimate ' + self.precision:<20} {verdict:<5} max |C - reference| = "
-                f"{self.max_difference:.3g} (rounding bound {self.tolerance:.3g}); largest "
-                f"estimate {self.largest_estimate:.3g} of full scale over {self.ticks} ticks")
-
-
-def check_error_estimate(model: Model, method: Tableau, dt: float, substeps: int,
-                         precision: str, ticks: int) -> EstimateCheck:
-    """Build the C with the error estimate and compare it, tick by tick, with embedded_estimate.
-
-    Each tick the reference starts from the C's own state, so only that tick's rounding counts:
-    the bound is 32 rounding units of the terms the estimate sums (sum_j |h (b_j - b_hat_j)|
-    times the largest stage rate, plus the rounding of the state carried through the Jacobian).
-    """
-    from .build import build, strict_compile
-    from .pipeline import generate
-    from .verify import as_precision, excitation
-
-    csource = generate(model, method, dt, substeps, precision, error_estimate=True)
-    strict_compile(csource)
-    built = build(csource, model)
-    ffi, lib = built.ffi, built.lib
-    ctx = ffi.new(f"{model.name}_ctx_t *")
-    err = ffi.new(f"{model.name}_real_t *")
-    getattr(lib, f"{model.name}_reset")(ctx)
-    advance = getattr(lib, f"{model.name}_advance_with_error")
-    u_all = as_precision(excitation(model, ticks), precision)
-    f, jac = _model_functions(model)
-    from .emit import error_scale
-
-    scales = np.array([float(error_scale(s)) for s in model.states])
-    weight = sum(abs(float(method.b[j] - method.b_hat[j])) for j in range(method.stages))
-    h = dt / substeps
-    worst_diff, worst_tol, largest = 0.0, 0.0, 0.0
-    passed = True
-    for k in range(ticks):
-        for j, inp in enumerate(model.inputs):
-            setattr(ctx, inp.name, float(u_all[k, j]))
-        x = np.array([getattr(ctx, s.name) for s in model.states])
-        t = float(getattr(ctx, model.time))
-        status = int(advance(ctx, err))
-        if status != 0:
-            passed = False
-            break
-        _, expected = embedded_estimate(model, method, t, x, u_all[k], dt, substeps)
-        rate = np.abs(f(t, x, u_all[k])) + np.max(np.abs(jac(t, x, u_all[k]))) * np.abs(x).max()
-        tol = float(np.max(32 * EPS[precision] * weight * h * (rate + np.abs(f(t, x, u_all[k])))
-                           / scales)) + 4 * EPS[precision] * expected
-        diff = abs(float(err[0]) - expected)
-        worst_diff, worst_tol = max(worst_diff, diff), max(worst_tol, tol)
-        largest = max(largest, expected)
-        if not diff <= tol:
-            passed = False
-    return EstimateCheck(precision, ticks, worst_diff, worst_tol, largest, passed)

@@ -1,18 +1,19 @@
-"""The independent Python reference for implicit, linearly implicit and exact methods.
+"""The reference steppers: one step of a method on the model in float64, one function per kind.
 
 Nothing is shared with the generated code path: f and df/dx come from sympy's lambdify of the
-model's own expressions, every Runge-Kutta tableau (diagonally implicit ones included) is solved
-as one coupled system in Z = Y - y0 by a full Newton iteration that re-evaluates the Jacobian at
-every iterate (the C uses a simplified Newton with J frozen, stage by stage for diagonally
-implicit methods), the step ends with y1 = y0 + h sum b_i f(Y_i) (the C uses d = b^T A^-1),
-and the exact zero-order hold uses scipy.linalg.expm on float64 matrices (the C uses 50-digit
-expm at generation time).
+model's own expressions; explicit tableaux run a generic tableau loop; every implicit Runge-Kutta
+tableau (diagonally implicit ones included) is solved as one coupled system in Z = Y - y0 by a
+full Newton iteration that re-evaluates the Jacobian at every iterate (the C uses a simplified
+Newton with J frozen, stage by stage for diagonally implicit methods), the step ends with
+y1 = y0 + h sum b_i f(Y_i) (the C uses d = b^T A^-1), and the exact zero-order hold uses
+scipy.linalg.expm on float64 matrices (the C uses 50-digit expm at generation time).
 
 References
 ----------
-HW: Hairer & Wanner, Solving Ordinary Differential Equations II, 2nd ed., 1996, sections IV.7
-(Rosenbrock methods) and IV.8 (Newton iterations for implicit Runge-Kutta methods)
-(from memory).
+HNW: Hairer, Norsett & Wanner, Solving Ordinary Differential Equations I, 2nd ed., 1993, section
+II.1 (explicit Runge-Kutta step). HW: Hairer & Wanner, Solving Ordinary Differential Equations II,
+2nd ed., 1996, sections IV.7 (Rosenbrock methods) and IV.8 (Newton iterations for implicit
+Runge-Kutta methods) (from memory).
 """
 
 from __future__ import annotations
@@ -20,8 +21,8 @@ from __future__ import annotations
 import numpy as np
 import sympy as sp
 
-from .method import ExactDiscretization, LinearlyImplicit
-from .model import Model
+from ..methods import EXACT, EXPLICIT, LINEARLY_IMPLICIT, LinearlyImplicit
+from ..model import Model
 from .numeric import jacobian_function, numeric, rate_function
 
 # Full Newton stops when the correction is below this fraction of the iterate's size: a few units
@@ -29,6 +30,16 @@ from .numeric import jacobian_function, numeric, rate_function
 REFERENCE_NEWTON_TOL = 1e-14
 # Iterations before the reference gives up (it then reports the tick as not completed).
 REFERENCE_NEWTON_ITERATIONS = 50
+
+
+def explicit_step(f, a, b, c, t, x, u, h):
+    """One explicit Runge-Kutta step with a generic tableau loop."""
+    s = len(b)
+    k = np.zeros((s, len(x)))
+    for i in range(s):
+        y = x + h * (a[i, :i] @ k[:i]) if i else x
+        k[i] = f(t + c[i] * h, y, u)
+    return x + h * (b @ k)
 
 
 def rk_stepper(model: Model, tableau, parameters=None):
@@ -129,9 +140,17 @@ def zoh_stepper(model: Model, parameters=None):
 
 
 def stepper(model: Model, method, parameters=None):
-    """The reference step function (t, x, u, h) -> x_next for a non-explicit method."""
-    if isinstance(method, ExactDiscretization):
+    """The reference step function (t, x, u, h) -> x_next for a method of any kind."""
+    if method.kind == EXPLICIT:
+        f = rate_function(model, parameters)
+        a, b, c = method.floats()
+
+        def step(t, x, u, h):
+            return explicit_step(f, a, b, c, t, x, u, h)
+
+        return step
+    if method.kind == EXACT:
         return zoh_stepper(model, parameters)
-    if isinstance(method, LinearlyImplicit):
+    if method.kind == LINEARLY_IMPLICIT:
         return rosenbrock_stepper(model, method, parameters)
     return rk_stepper(model, method, parameters)

@@ -1,0 +1,130 @@
+"""Operation counts: the cost per tick of a step before any target is involved.
+
+Counted on the generated step program for explicit methods; estimated from the rate and Jacobian
+counts for the other kinds.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+
+import sympy as sp
+
+import math
+
+from ..discretize import Block, StepProgram
+from ..methods import DIAGONALLY_IMPLICIT, EXACT, EXPLICIT, LINEARLY_IMPLICIT
+from ..model import Model
+
+# sympy's visual count_ops names -> our categories. Powers are small integer powers (written out
+# as multiplications by the printer) or calls; both count here as one 'call' to stay conservative.
+_CATEGORY = {"ADD": "add", "SUB": "add", "NEG": "add", "MUL": "mul", "DIV": "div", "POW": "call"}
+
+
+@dataclass(frozen=True)
+class OperationCount:
+    add: int = 0
+    mul: int = 0
+    div: int = 0
+    sqrt: int = 0
+    call: int = 0
+
+    def __add__(self, other: "OperationCount") -> "OperationCount":
+        return OperationCount(**{k: getattr(self, k) + getattr(other, k) for k in asdict(self)})
+
+    def scaled(self, n: int) -> "OperationCount":
+        return OperationCount(**{k: v * n for k, v in asdict(self).items()})
+
+    @property
+    def total(self) -> int:
+        return sum(asdict(self).values())
+
+    def to_dict(self) -> dict:
+        return dict(asdict(self), total=self.total)
+
+
+def count_expr(expr: sp.Expr) -> OperationCount:
+    counts = {"add": 0, "mul": 0, "div": 0, "sqrt": 0, "call": 0}
+    visual = sp.count_ops(expr, visual=True)
+    if visual == 0:
+        return OperationCount()
+    for term in sp.Add.make_args(visual):
+        coeff, sym = term.as_coeff_Mul()
+        name = str(sym)
+        if name == "POW" and expr.has(sp.sqrt):
+            counts["sqrt"] += int(coeff)
+        else:
+            counts[_CATEGORY.get(name, "call")] += int(coeff)
+    return OperationCount(**counts)
+
+
+def count_block(block: Block) -> OperationCount:
+    total = OperationCount()
+    for a in block.temporaries:
+        total = total + count_expr(a.expr)
+    for _, e in block.results:
+        total = total + count_expr(e)
+    return total
+
+
+def step_cost(step: StepProgram) -> OperationCount:
+    """Floating-point operations of one tick (all substeps) of an explicit step program."""
+    nx = step.model.nx
+    per_step = count_block(step.rates).scaled(len(step.stages))
+    for stage in step.stages:
+        per_step = per_step + OperationCount(add=(len(stage.terms)) * nx, mul=len(stage.terms) * nx)
+        if stage.time_offset != 0:
+            per_step = per_step + OperationCount(add=1)
+    per_step = per_step + OperationCount(add=len(step.weights) * nx, mul=len(step.weights) * nx)
+    return per_step.scaled(step.substeps)
+
+
+def _rate_operations(model: Model) -> tuple[int, int]:
+    """Operations of one rate evaluation and of one Jacobian evaluation (after CSE)."""
+    from ..discretize import rate_block
+    from ..model import INTERNAL_PREFIX
+    from ..simplify import cse_block
+
+    f_ops = count_block(cse_block(rate_block(model), INTERNAL_PREFIX + "r")).total
+    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x)).xreplace(model.baked)
+    entries = tuple((f"j{i}", e) for i, e in enumerate(J) if e != 0)
+    j_ops = count_block(cse_block(Block((), entries), INTERNAL_PREFIX + "j")).total
+    return f_ops, j_ops
+
+
+def operations_per_step(model: Model, method, newton_iterations: float | None = None):
+    """(operations of one step, how they were found).
+
+    Explicit tableaux: counted on the generated step program (cost.step_cost). Other kinds are
+    estimated from the rate and Jacobian operation counts: an LU factorization costs 2/3 n^3, a
+    solve 2 n^2 (common practice, no source), times the Newton iterations measured by the
+    numerical model (or 3 assumed when none were measured).
+    """
+    kind = method.kind
+    nx = model.nx
+    if kind == EXPLICIT:
+        from ..discretize import discretize
+        from ..simplify import simplify
+
+        return step_cost(simplify(discretize(model, method, 1))).total, "counted"
+    f_ops, j_ops = _rate_operations(model)
+    lu = lambda n: (2 * n ** 3) // 3 + n * n
+    solve = lambda n: 2 * n * n
+    iterations = max(1, math.ceil(newton_iterations)) if newton_iterations else 3
+    if kind == EXACT:
+        nu = len(model.inputs)
+        return 2 * nx * (nx + nu + 1), "estimated: one matrix-vector product"
+    s = method.stages
+    if kind == LINEARLY_IMPLICIT:
+        ops = j_ops + lu(nx) + s * (f_ops + solve(nx) + 2 * s * nx)
+        return ops, "estimated: Jacobian, one LU, one solve per stage"
+    a = method.a
+    if kind == DIAGONALLY_IMPLICIT:
+        diagonals = {a[i][i] for i in range(s) if a[i][i] != 0}
+        implicit_stages = sum(1 for i in range(s) if a[i][i] != 0)
+        ops = j_ops + len(diagonals) * lu(nx) + (s - implicit_stages) * f_ops + \
+            implicit_stages * iterations * (f_ops + solve(nx) + 2 * s * nx) + 2 * s * nx
+        return ops, f"estimated: {iterations} Newton iteration(s) per stage"
+    n = s * nx
+    ops = j_ops + lu(n) + iterations * (s * f_ops + solve(n) + 2 * s * n) + 2 * s * nx
+    return ops, f"estimated: {iterations} Newton iteration(s) on the {n} x {n} stage system"

@@ -1,0 +1,192 @@
+"""The intermediate representation of one discretized step, for every method kind.
+
+A step is straight-line code plus solver blocks: the model's rate function (and, for implicit
+kinds, its Jacobian) as blocks of assignments that the simplify stage reduces with CSE, and the
+method's stages with every coefficient already multiplied out (h*a_ij, c_i*h, h*b_j, ...) as exact
+values. Emitters only print what the IR holds.
+
+- ``StepProgram``: an explicit Runge-Kutta step (stages kept as arrays);
+- ``ImplicitStep``: implicit Runge-Kutta (Newton on the stage equations), Rosenbrock (one linear
+  solve per stage) and the exact zero-order hold (a propagator computed at generation time).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
+
+import sympy as sp
+
+from ..errors import MethodError
+from ..methods import Method
+from ..model import Model
+
+if TYPE_CHECKING:
+    from .linear_solve import LinearSolve
+
+@dataclass(frozen=True)
+class Assign:
+    """One assignment ``target = expr`` of straight-line code."""
+
+    target: sp.Symbol
+    expr: sp.Expr
+
+
+@dataclass(frozen=True)
+class Block:
+    """Straight-line code: temporaries first, then the results in order.
+
+    inputs: the symbols the block reads; results: (name, expression) pairs it produces.
+    """
+
+    temporaries: tuple[Assign, ...]
+    results: tuple[tuple[str, sp.Expr], ...]
+
+    def operation_count(self) -> int:
+        exprs = [a.expr for a in self.temporaries] + [e for _, e in self.results]
+        return int(sum(sp.count_ops(e, visual=False) for e in exprs))
+
+
+@dataclass(frozen=True)
+class Stage:
+    """Stage i of an explicit step: k_i = f(t + c_i h, x + sum_j (h a_ij) k_j).
+
+    terms holds (j, h*a_ij) for the non-zero a_ij only, as exact values.
+    """
+
+    index: int
+    c: sp.Expr
+    time_offset: sp.Expr
+    terms: tuple[tuple[int, sp.Expr], ...]
+
+
+@dataclass(frozen=True)
+class StepProgram:
+    """The discretized step: what one substep of length h computes, before simplification.
+
+    h = dt / substeps; weights are (j, h*b_j) for the stages that contribute.
+    """
+
+    model: Model
+    method: Method
+    dt: sp.Rational
+    substeps: int
+    rates: Block
+    outputs: Block
+    stages: tuple[Stage, ...]
+    weights: tuple[tuple[int, sp.Expr], ...]
+    error_weights: tuple[tuple[int, sp.Expr], ...] = ()
+
+    @property
+    def h(self) -> sp.Rational:
+        return self.dt / self.substeps
+
+    @property
+    def rate_evaluations(self) -> int:
+        return len(self.stages)
+
+
+# Default Newton iteration limit per solve: a hard start of the stiff demo (a 12 V step on the axis
+# at rest, where Coulomb friction makes the frozen Jacobian stale) contracts by ~0.2 per
+# simplified-Newton iteration and needs up to ~15 iterations to reach the double tolerance (float:
+# ~6); smooth ticks take 2-4. The limit bounds the time per tick either way.
+DEFAULT_NEWTON_ITERATIONS = 20
+# Default Newton tolerance on max_i |correction_i| / scale_i. Float: 2^-16 = 256 units of float
+# roundoff, well above the rounding noise of one correction (a few tens of units for a
+# well-conditioned iteration matrix), so it is attainable in float32. Double: 2^-40, below the
+# 1e-13 error floor of the order study once the contraction factor (< 0.1) is applied.
+DEFAULT_NEWTON_TOLERANCE = {"float": 2.0 ** -16, "double": 2.0 ** -40}
+# Scale of a state without a range in the Newton test (an absolute floor in the state's unit).
+DEFAULT_STATE_SCALE = 1.0
+
+ELIMINATION = "elimination"
+DENSE_LU = "dense-lu"
+INVERSE = "inverse"
+SOLVERS = ("auto", ELIMINATION, DENSE_LU)
+
+
+@dataclass(frozen=True)
+class NewtonSpec:
+    """Newton iteration bounds: at most max_iterations, converged when max |dz_i|/scale_i <= tol.
+
+    tolerance None means the precision's default (DEFAULT_NEWTON_TOLERANCE). scale_i is
+    scale[i] + |x_i| with scale[i] the largest magnitude of the state's range (or
+    DEFAULT_STATE_SCALE).
+    """
+
+    max_iterations: int = DEFAULT_NEWTON_ITERATIONS
+    tolerance: float | None = None
+    scale: tuple[float, ...] = ()
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.max_iterations, int) or isinstance(self.max_iterations, bool) \
+                or self.max_iterations < 1:
+            raise MethodError(f"--newton-iterations: must be a whole number >= 1, got "
+                              f"{self.max_iterations!r}")
+        if self.tolerance is not None and not (0.0 < float(self.tolerance) < 1.0):
+            raise MethodError(f"--newton-tol: must be a relative tolerance between 0 and 1, got "
+                              f"{self.tolerance!r}")
+
+    def tolerance_for(self, precision: str) -> float:
+        return float(self.tolerance) if self.tolerance is not None \
+            else DEFAULT_NEWTON_TOLERANCE[precision]
+
+
+@dataclass(frozen=True)
+class Jacobian:
+    """df/dx by its structural non-zeros: pattern[k] = (i, j) holds d f_i / d x_j = block result k.
+
+    linear: f is affine in x and J depends on neither x nor t (one Newton step is exact).
+    values: the exact entries when J is a constant matrix (linear time-invariant), else None.
+    """
+
+    nx: int
+    pattern: tuple[tuple[int, int], ...]
+    block: Block
+    linear: bool
+    values: tuple[sp.Expr, ...] | None
+
+
+@dataclass(frozen=True)
+class ImplicitStep:
+    """The discretized implicit step for one substep h = dt / substeps.
+
+    scheme: 'diagonally implicit', 'fully implicit', 'linearly implicit' or 'exact'.
+    For Runge-Kutta schemes: update_z holds (i, d_i) when x+ = x + sum d_i Z_i (A invertible),
+    otherwise update_f holds (i, h b_i) and the update evaluates f at the converged stages.
+    For the exact scheme, propagator holds (Ad, Bd, ed) with Bd's columns per input and ed the
+    response to the model's constant term.
+    """
+
+    model: Model
+    method: Method
+    dt: sp.Rational
+    substeps: int
+    scheme: str
+    rates: Block
+    outputs: Block
+    jacobian: Jacobian | None = None
+    solve: LinearSolve | None = None
+    newton: NewtonSpec = NewtonSpec()
+    update_z: tuple[tuple[int, sp.Expr], ...] = ()
+    update_f: tuple[tuple[int, sp.Expr], ...] = ()
+    dfdt: Block | None = None
+    propagator: tuple | None = None
+
+    @property
+    def h(self) -> sp.Rational:
+        return self.dt / self.substeps
+
+    @property
+    def linear(self) -> bool:
+        return self.jacobian is not None and self.jacobian.linear
+
+    @property
+    def prefactored(self) -> bool:
+        return self.solve is not None and self.solve.kind == INVERSE
+
+    @property
+    def rate_evaluations(self) -> int:
+        return self.method.stages
+
+

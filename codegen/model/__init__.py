@@ -1,0 +1,17 @@
+"""Stage 1 of the pipeline: the model x' = f(t, x, u, p), from a TOML file or from sympy directly.
+
+- ``types``: the frozen, validated ``Model`` and its quantities (``State``, ``Input``,
+  ``Parameter``, ``Output``), built from Python with ``define``;
+- ``expressions``: the expression language, translated from Python's syntax tree into sympy by
+  hand (no eval);
+- ``loader``: model files (TOML) -> ``Model``.
+"""
+
+from .expressions import parse_expression
+from .loader import load_model, model_from_data
+from .types import (C_KEYWORDS, INTERNAL_PREFIX, RESERVED_NAMES, Input, Model, Output, Parameter,
+                    Quantity, State, define)
+
+__all__ = ["C_KEYWORDS", "INTERNAL_PREFIX", "RESERVED_NAMES", "Input", "Model", "Output",
+           "Parameter", "Quantity", "State", "define", "load_model", "model_from_data",
+           "parse_expression"]

@@ -1,0 +1,161 @@
+"""The order study: the empirical convergence order of the C build, halving the step.
+
+The reference picks the levels in the asymptotic regime; the C is built and run (double) at
+those levels and its own errors against solve_ivp give the measured order.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .. import reference
+from ..build import build
+from ..methods import EXACT, Method
+from ..model import Model
+from ..pipeline import generate
+from ..run import run_c
+from .scenario import constant_inputs
+
+# Measured order must be within this of the method's order (the acceptance bound of the project).
+ORDER_TOLERANCE = 0.15
+# Order study: errors outside [floor, ceiling] x scale are not in the asymptotic regime.
+ORDER_ERROR_CEILING = 1e-2
+ORDER_ERROR_FLOOR = {"double": 1e-13}
+# A level counts only when its error is this many times the smallest error the study reached:
+# the smallest is the noise floor (rounding, or the accuracy of the solve_ivp solution), and a
+# level 30 times above it is off by at most ~3 % (0.05 in the fitted order).
+ORDER_NOISE_MARGIN = 30.0
+ORDER_MAX_LEVELS = 14
+
+
+@dataclass(frozen=True)
+class OrderStudy:
+    """Empirical convergence order: errors at T for n = n0, 2 n0, ... steps."""
+
+    expected: int | None
+    horizon: float
+    steps: tuple[int, ...]
+    errors_c: tuple[float, ...]
+    errors_reference: tuple[float, ...]
+    measured: float | None
+    passed: bool
+    note: str = ""
+
+
+
+def order_horizon(model: Model, u: np.ndarray) -> float:
+    """A horizon of two of the model's fastest time constants at the initial point."""
+    x0 = np.array([s.initial for s in model.states])
+    jac = reference.jacobian_function(model)
+    with np.errstate(all="ignore"):
+        eig = np.linalg.eigvals(jac(0.0, x0, u))
+    fastest = float(np.max(np.abs(eig))) if np.all(np.isfinite(eig)) else 0.0
+    return 2.0 / fastest if fastest > 0 else 1.0
+
+
+def _window(errors: list[float], scale: float, floor: float) -> list[int]:
+    """Indices of levels whose error is in the asymptotic, above-rounding range.
+
+    Levels end at the first one whose error did not shrink (rounding or the reference's own
+    accuracy took over), and each must stand ORDER_NOISE_MARGIN above the smallest error seen.
+    """
+    finite = [e for e in errors if np.isfinite(e) and e > 0]
+    noise = min(finite) if finite else 0.0
+    low = max(floor * scale, ORDER_NOISE_MARGIN * noise)
+    keep = []
+    for i, e in enumerate(errors):
+        if i > 0 and np.isfinite(errors[i - 1]) and np.isfinite(e) and e >= errors[i - 1] / 1.5:
+            if keep and keep[-1] == i - 1:
+                keep.pop()  # the level before a stall is already touched by the noise
+            break
+        if np.isfinite(e) and low < e < ORDER_ERROR_CEILING * scale:
+            keep.append(i)
+    return keep
+
+
+def fitted_order(steps, errors) -> float:
+    """Least-squares slope of log(error) against log(1/n)."""
+    return float(-np.polyfit(np.log(np.asarray(steps, float)), np.log(np.asarray(errors)), 1)[0])
+
+
+# An exact discretization must match solve_ivp (rtol 1e-13) to this fraction of the state scale at
+# every step size: a thousand times solve_ivp's tolerance, far below any method error.
+EXACT_AGREEMENT = 1e-10
+
+
+def _end_error(run: reference.Trajectory, n: int, exact: np.ndarray) -> float:
+    """Max |x(T) - exact| of a run of n steps, or inf when it did not finish."""
+    return float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n else float("inf")
+
+
+def _c_end_errors(model, method, u, horizon, exact, steps, options, progress, what) -> list:
+    """End errors of the C build (double) with n steps over the horizon, for each n in steps."""
+    errors = []
+    for n in steps:
+        if progress:
+            progress(f"{what}: C build with {n} steps over {horizon:.3g} s")
+        built = build(generate(model, method, horizon / n, 1, "double", **(options or {})), model)
+        errors.append(_end_error(run_c(built, model, np.repeat(u[None, :], n, axis=0)), n, exact))
+    return errors
+
+
+def _exact_study(model, method, u, horizon, exact, scale, options, progress) -> OrderStudy:
+    """For an exact discretization: the error must stay at rounding level at every step size."""
+    steps = (2, 4, 8)
+    c_errors = _c_end_errors(model, method, u, horizon, exact, steps, options, progress,
+                             "exactness")
+    passed = all(e <= EXACT_AGREEMENT * scale for e in c_errors)
+    return OrderStudy(None, horizon, steps, tuple(c_errors), (), None, bool(passed),
+                      "exact discretization: error at the reference's tolerance at every step "
+                      "size" if passed else "exact discretization: error above the reference's "
+                      "tolerance")
+
+
+def measure_order(model: Model, method: Method, expected: int | None = None,
+                  progress=None, options: dict | None = None) -> OrderStudy:
+    """Empirical order of the C build (double) by halving the step on the model.
+
+    The reference picks the levels in the asymptotic regime, then the C is built and run at
+    those levels and its own errors against solve_ivp give the measured order.
+    options: generation options of implicit methods.
+    """
+    expected = expected or method.order
+    u = constant_inputs(model)
+    horizon = order_horizon(model, u)
+    exact = reference.high_accuracy(model, horizon, u[None, :], rtol=1e-13).xs[-1]
+    scale = max(float(np.max(np.abs(exact))), 1e-300)
+    if method.kind == EXACT:
+        return _exact_study(model, method, u, horizon, exact, scale, options, progress)
+    floor = ORDER_ERROR_FLOOR["double"]
+    steps, ref_errors = [], []
+    for level in range(1, ORDER_MAX_LEVELS + 1):
+        n = 2 ** level
+        err = _end_error(reference.run(model, method, horizon / n, 1,
+                                       np.repeat(u[None, :], n, axis=0)), n, exact)
+        steps.append(n)
+        ref_errors.append(err)
+        if np.isfinite(err) and err < floor * scale:
+            break
+    idx = _window(ref_errors, scale, floor)
+    if len(idx) < 3:
+        if all(e <= floor * scale for e in ref_errors if np.isfinite(e)) and ref_errors[0] < floor * scale:
+            return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, True,
+                              "the method is exact on this model at every step size: no order "
+                              "to measure")
+        return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, False,
+                          "fewer than three step sizes in the asymptotic range; the model may be "
+                          "non-smooth (Piecewise, abs, min/max) or badly scaled")
+    idx = idx[-3:]
+    chosen = [steps[i] for i in idx]
+    c_errors = _c_end_errors(model, method, u, horizon, exact, chosen, options, progress,
+                             "order study")
+    if not all(np.isfinite(c_errors)) or min(c_errors) <= 0:
+        return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
+                          tuple(ref_errors[i] for i in idx), None, False,
+                          "the C build did not finish the order study runs")
+    measured = fitted_order(chosen, c_errors)
+    passed = expected is None or abs(measured - expected) <= ORDER_TOLERANCE
+    return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
+                      tuple(ref_errors[i] for i in idx), measured, bool(passed))
