@@ -9,6 +9,7 @@ must hold to DECIMAL_DATA_TOL, and the order is decided to that tolerance (the o
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import tomllib
 from pathlib import Path
 
@@ -90,11 +91,12 @@ def _tolerance_note(tableau: Tableau) -> str:
     return f" (decimal data: conditions held to {tableau.tolerance:g})" if tableau.tolerance else ""
 
 
-def read_toml(path: str | Path) -> dict:
-    """A method file's TOML document, or one MethodError line naming the file."""
+def read_toml(path: str | Path) -> tuple[dict, str]:
+    """A method file's TOML document and the SHA-256 of its bytes, or one MethodError line."""
     path = Path(path)
     try:
-        return tomllib.loads(path.read_text(encoding="utf-8"))
+        raw = path.read_bytes()
+        return tomllib.loads(raw.decode("utf-8")), hashlib.sha256(raw).hexdigest()
     except FileNotFoundError:
         raise MethodError(f"{path}: file not found") from None
     except (OSError, UnicodeDecodeError) as exc:
@@ -106,4 +108,6 @@ def read_toml(path: str | Path) -> dict:
 def load_tableau(path: str | Path) -> Tableau:
     """Read a user tableau (keys name, a, b, c, optional order and b_hat), its order checked."""
     path = Path(path)
-    return with_order(tableau_from_data(read_toml(path), str(path), method_id=path.stem))
+    data, digest = read_toml(path)
+    tableau = tableau_from_data(data, str(path), method_id=path.stem)
+    return with_order(dataclasses.replace(tableau, digest=digest))

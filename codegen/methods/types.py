@@ -87,6 +87,7 @@ class Tableau:
     source: str = ""
     tolerance: float = 0.0
     origin: str = field(default="", compare=False)  # file or table it came from, for diagnostics
+    digest: str = field(default="", compare=False)  # SHA-256 of the method file ('' built in)
 
     def __post_init__(self) -> None:
         s = len(self.b)
@@ -165,6 +166,7 @@ class LinearlyImplicit:
     b_hat: tuple[sp.Expr, ...] | None = None
     embedded_order: int | None = None
     origin: str = field(default="", compare=False)
+    digest: str = field(default="", compare=False)
 
     def __post_init__(self) -> None:
         s = len(self.b)

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import tomllib
 from pathlib import Path
 
@@ -10,7 +11,7 @@ import sympy as sp
 from ..errors import ModelError, located
 from .expressions import parse_expression
 from .types import Input, Model, Output, Parameter, State, _suggest, check_finite, check_name, \
-    check_range, define
+    check_range
 
 _TOP_KEYS = {"name", "description", "time", "states", "inputs", "parameters", "outputs"}
 _STATE_KEYS = {"initial", "rate", "unit", "range", "description"}
@@ -61,7 +62,7 @@ def _number(entry, key, where, item, default=None):
     return float(value)
 
 
-def model_from_data(data: dict, where: str) -> Model:
+def model_from_data(data: dict, where: str, digest: str = "") -> Model:
     """Build and validate a Model from a parsed TOML document."""
     _check_keys(data, _TOP_KEYS, where, "")
     if "name" not in data:
@@ -151,9 +152,9 @@ def model_from_data(data: dict, where: str) -> Model:
     description = data.get("description", "")
     if not isinstance(description, str):
         raise ModelError(located(where, "description", "must be a string"))
-    return define(name=name, states=states, inputs=inputs, parameters=parameters,
-                  outputs=outputs, time=time, description=description, source=where)
-
+    return Model(name=name, states=tuple(states), inputs=tuple(inputs),
+                 parameters=tuple(parameters), outputs=tuple(outputs), time=time,
+                 description=description, source=where, digest=digest)
 
 
 def load_model(path: str | Path) -> Model:
@@ -161,7 +162,8 @@ def load_model(path: str | Path) -> Model:
     path = Path(path)
     where = str(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        raw = path.read_bytes()
+        text = raw.decode("utf-8")
     except FileNotFoundError:
         raise ModelError(f"{where}: file not found") from None
     except (UnicodeDecodeError, IsADirectoryError, PermissionError) as exc:
@@ -171,4 +173,4 @@ def load_model(path: str | Path) -> Model:
     except tomllib.TOMLDecodeError as exc:
         raise ModelError(f"{where}: not valid TOML: {exc} (a name declared twice in one table "
                          "is reported here too)") from None
-    return model_from_data(data, where)
+    return model_from_data(data, where, hashlib.sha256(raw).hexdigest())

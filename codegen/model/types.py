@@ -118,7 +118,9 @@ class Output(Quantity):
 class Model:
     """A validated ODE model x' = f(t, x, u, p) with algebraic outputs y = g(t, x, u, p).
 
-    source names where the model came from (a file path, or '<python>') for diagnostics.
+    source names where the model came from (a file path, or '<python>') for diagnostics;
+    digest is the SHA-256 (hex) of the model file's bytes ('' for a model built in Python), which
+    the generated files record instead of any machine path.
     """
 
     name: str
@@ -129,6 +131,7 @@ class Model:
     time: str = "t"
     description: str = ""
     source: str = "<python>"
+    digest: str = field(default="", compare=False)
 
     def __post_init__(self) -> None:
         where = self.source
