@@ -1,7 +1,8 @@
 """Stage 6: C text -> built module (cffi), plus the strict warning-free compile of the C alone.
 
-The cffi module adds one test-only loop (not part of the firmware files) that runs N ticks over a
-buffer of inputs, so long comparisons cost one Python call.
+The cffi module adds one test-only loop (templates/run_loop.c.j2, not part of the firmware files)
+that runs N ticks over a buffer of inputs and stores time, states and outputs after every tick, so
+a whole run costs one Python call (driven by run.run_built).
 """
 
 from __future__ import annotations
@@ -15,7 +16,7 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-from .emit import CSource
+from .emit import CSource, render
 from .errors import BuildError
 
 # The warning set every generated file must pass (a superset of the one promised in the README).
@@ -27,28 +28,9 @@ STRICT_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-Wpedantic", "-Wconversion", "-
 FP_FLAGS = ("-ffp-contract=off",)
 # -O2 -g0 roughly halves cffi build time compared with its inherited -O3 -g.
 BUILD_FLAGS = ("-std=c99", "-O2", "-g0") + FP_FLAGS
-
-_RUN_LOOP = """
-#include "{header}"
-int tw_run({ctx_t} *ctx, long n, const {real_t} *u, {real_t} *xs, {real_t} *ts, int *status)
-{{
-    long k;
-    {real_t} *row = xs;
-{store}
-    ts[0] = ctx->{time};
-    for (k = 0; k < n; ++k) {{
-{load}
-        *status = (int){prefix}_advance(ctx);
-        if (*status != 0) {{
-            return (int)k;
-        }}
-        row = xs + (k + 1) * {nx};
-{store}
-        ts[k + 1] = ctx->{time};
-    }}
-    return (int)n;
-}}
-"""
+# The test-only loop's C signature (templates/run_loop.c.j2); its cdef is the same text plus ';'.
+RUN_LOOP_SIGNATURE = ("long tw_run({ctx_t} *ctx, long n, const {real_t} *u, {real_t} *ts, "
+                      "{real_t} *xs, {real_t} *ys, int *status)")
 
 _CACHE: dict[str, object] = {}
 
@@ -63,20 +45,26 @@ class BuiltModule:
     path: Path
 
 
-def _run_loop(csource: CSource, model) -> str:
+def run_loop_context(csource: CSource, model) -> dict:
+    """Every name and number templates/run_loop.c.j2 lays out, for one model's generated C."""
     p = csource.prefix
-    store = "\n".join(f"        row[{i}] = ctx->{s.name};" for i, s in enumerate(model.states))
-    load = "\n".join(f"        ctx->{u.name} = u[k * {len(model.inputs)} + {j}];"
-                     for j, u in enumerate(model.inputs))
-    return _RUN_LOOP.format(header=csource.header_name, ctx_t=f"{p}_ctx_t", real_t=f"{p}_real_t",
-                            prefix=p, nx=model.nx, store=store, load=load, time=model.time)
+    signature = RUN_LOOP_SIGNATURE.format(ctx_t=f"{p}_ctx_t", real_t=f"{p}_real_t")
+    return dict(
+        header=csource.header_name, signature=signature, ctx_t=f"{p}_ctx_t",
+        real_t=f"{p}_real_t", outputs_t=f"{p}_outputs_t", time=model.time,
+        advance_function=f"{p}_advance", outputs_function=f"{p}_outputs",
+        nx=model.nx, nu=len(model.inputs), ny=len(model.outputs),
+        states=list(enumerate(s.name for s in model.states)),
+        inputs=list(enumerate(u.name for u in model.inputs)),
+        outputs=list(enumerate(o.name for o in model.outputs)))
 
 
 def build(csource: CSource, model, workdir: str | Path | None = None) -> BuiltModule:
     """Compile the generated C with cffi into a temporary module and load it (cached by content)."""
     import cffi
 
-    loop = _run_loop(csource, model)
+    context = run_loop_context(csource, model)
+    loop = render("run_loop.c.j2", **context)
     key = hashlib.sha256((csource.cdef + loop + "".join(t for _, t in csource.files)).encode())
     name = f"_tw_{csource.prefix}_{key.hexdigest()[:16]}"
     if name in _CACHE:
@@ -86,9 +74,7 @@ def build(csource: CSource, model, workdir: str | Path | None = None) -> BuiltMo
     for fname, text in csource.files:
         (folder / fname).write_text(text, encoding="utf-8")
     ffi = cffi.FFI()
-    ffi.cdef(csource.cdef + f"int tw_run({csource.prefix}_ctx_t *ctx, long n, const "
-             f"{csource.prefix}_real_t *u, {csource.prefix}_real_t *xs, {csource.prefix}_real_t "
-             "*ts, int *status);\n")
+    ffi.cdef(csource.cdef + context["signature"] + ";\n")
     ffi.set_source(name, loop, sources=[str(folder / csource.source_name)],
                    include_dirs=[str(folder)], extra_compile_args=list(BUILD_FLAGS),
                    libraries=["m"])

@@ -1,39 +1,167 @@
 """Running the compiled C over whole input arrays: one call into a C loop, not one per tick.
 
-The cffi module of build.build carries a test-only loop (not part of the firmware files) that
-runs N ticks over a buffer of inputs; this module drives it with numpy arrays.
+The cffi module of build.build carries a test-only loop (templates/run_loop.c.j2, not part of the
+firmware files) that runs N ticks over a buffer of inputs and stores the time, the states and the
+outputs (from the C's own outputs function) before the first tick and after every tick.
+``run_built`` drives it with numpy arrays, ``replay`` generates, builds and runs in one call, and
+``run_c`` keeps the states alone as a reference.Trajectory for the checks.
 """
 
 from __future__ import annotations
 
+import csv
+import io
+from dataclasses import dataclass
+from pathlib import Path
+
 import numpy as np
 
+from .emit import STATUS_CODES
 from .emit.printer import FLOAT
+from .errors import CheckError
 from .model import Model
 from .reference import Trajectory
 
+# Status value -> name, as the generated header spells it after the prefix (HEATER_NONFINITE).
+STATUS_NAMES = {value: name for name, value, _ in STATUS_CODES}
 
-def run_c(built, model: Model, inputs: np.ndarray, x0=None) -> Trajectory:
-    """Run the compiled step over the inputs with the test-only C loop."""
+
+def status_name(value: int) -> str:
+    """The name of a status value of the generated advance function ('OK', 'NONFINITE', ...)."""
+    return STATUS_NAMES.get(int(value), f"{int(value)} (unknown)")
+
+
+@dataclass(frozen=True)
+class Replay:
+    """The compiled C run over a log of inputs: a row before the first tick and one per tick taken.
+
+    t: (rows,) in s; states: (rows, nx); outputs: (rows, ny), from the C's outputs function with
+    the inputs of the tick just taken (the reset values in row 0); rows = completed + 1.
+    ticks: the ticks asked for; completed: the ticks taken; status: the status of the tick that
+    stopped the run (0, 'OK', when every tick was taken).
+    """
+
+    time_name: str
+    state_names: tuple[str, ...]
+    output_names: tuple[str, ...]
+    t: np.ndarray
+    states: np.ndarray
+    outputs: np.ndarray
+    ticks: int
+    completed: int
+    status: int
+
+    def __post_init__(self):
+        rows = self.completed + 1
+        if not 0 <= self.completed <= self.ticks:
+            raise CheckError(f"replay: {self.completed} ticks taken of {self.ticks} asked for")
+        if (self.completed < self.ticks) == (self.status == 0):
+            raise CheckError(f"replay: status {self.status} after {self.completed} of "
+                             f"{self.ticks} ticks; a run stops early exactly when a tick fails")
+        shapes = {"t": (np.shape(self.t), (rows,)),
+                  "states": (np.shape(self.states), (rows, len(self.state_names))),
+                  "outputs": (np.shape(self.outputs), (rows, len(self.output_names)))}
+        for name, (got, want) in shapes.items():
+            if got != want:
+                raise CheckError(f"replay: {name} has shape {got}, expected {want}")
+
+    @property
+    def status_name(self) -> str:
+        return status_name(self.status)
+
+    @property
+    def finished(self) -> bool:
+        """Whether every tick asked for was taken."""
+        return self.completed == self.ticks
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """The column names of table(): time, then the states, then the outputs."""
+        return (self.time_name, *self.state_names, *self.output_names)
+
+    def table(self) -> np.ndarray:
+        """(rows, 1 + nx + ny): time, states and outputs side by side, in the order of columns."""
+        return np.column_stack([self.t, self.states, self.outputs])
+
+    def csv_text(self) -> str:
+        """The table as CSV with a header line; every value in round-trip text (repr)."""
+        buf = io.StringIO()
+        writer = csv.writer(buf, lineterminator="\n")
+        writer.writerow(self.columns)
+        writer.writerows([repr(float(v)) for v in row] for row in self.table())
+        return buf.getvalue()
+
+    def save_csv(self, path: str | Path) -> Path:
+        """Write csv_text() to path whole (through a temporary file): never half a file."""
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = path.with_name(path.name + ".tmp")
+        tmp.write_text(self.csv_text(), encoding="utf-8", newline="\n")
+        tmp.replace(path)
+        return path
+
+
+def run_built(built, model: Model, inputs, x0=None) -> Replay:
+    """Run the built C over inputs in one call of the test-only loop.
+
+    inputs: (ticks, nu) array, one row per tick, columns in the order of model.inputs (held during
+    the tick); x0: initial states instead of the model's (nx values), or None.
+    """
     ffi, lib = built.ffi, built.lib
     dtype = np.float32 if built.csource.precision == FLOAT else np.float64
     real_t = f"{model.name}_real_t"
-    n = len(inputs)
-    u = np.ascontiguousarray(inputs, dtype=dtype).reshape(-1)
-    xs = np.zeros((n + 1) * model.nx, dtype=dtype)
+    nu, nx, ny = len(model.inputs), model.nx, len(model.outputs)
+    rows_in = np.asarray(inputs, dtype=np.float64)
+    if rows_in.ndim != 2 or rows_in.shape[1] != nu:
+        raise CheckError(f"{model.name}: inputs have shape {rows_in.shape}, expected (ticks, {nu})"
+                         f" with the columns {', '.join(u.name for u in model.inputs) or '(none)'}")
+    n = len(rows_in)
+    u = np.ascontiguousarray(rows_in, dtype=dtype).reshape(-1)
     ts = np.zeros(n + 1, dtype=dtype)
+    xs = np.zeros((n + 1) * nx, dtype=dtype)
+    ys = np.zeros((n + 1) * ny, dtype=dtype)
     ctx = ffi.new(f"{model.name}_ctx_t *")
     getattr(lib, f"{model.name}_reset")(ctx)
     if x0 is not None:
         for s, v in zip(model.states, x0):
             setattr(ctx, s.name, float(v))
     status = ffi.new("int *")
-    done = lib.tw_run(ctx, n, ffi.from_buffer(f"{real_t}[]", u) if u.size else ffi.NULL,
-                      ffi.from_buffer(f"{real_t}[]", xs), ffi.from_buffer(f"{real_t}[]", ts),
-                      status)
-    xs = xs.reshape(n + 1, model.nx).astype(np.float64)
-    xs[done + 1:] = np.nan
-    return Trajectory(ts=ts.astype(np.float64), xs=xs, completed=int(done))
+
+    def buffer(arr):
+        return ffi.from_buffer(f"{real_t}[]", arr) if arr.size else ffi.NULL
+
+    done = int(lib.tw_run(ctx, n, buffer(u), buffer(ts), buffer(xs), buffer(ys), status))
+    rows = done + 1
+    return Replay(time_name=model.time, state_names=tuple(s.name for s in model.states),
+                  output_names=tuple(o.name for o in model.outputs),
+                  t=ts[:rows].astype(np.float64),
+                  states=xs.reshape(n + 1, nx)[:rows].astype(np.float64),
+                  outputs=ys.reshape(n + 1, ny)[:rows].astype(np.float64),
+                  ticks=n, completed=done, status=int(status[0]))
+
+
+def replay(model: Model, method, dt: float, inputs, substeps: int = 1,
+           precision: str = "float", x0=None, **implicit_options) -> Replay:
+    """Generate, build and run the C of model and method over inputs ((ticks, nu) array).
+
+    implicit_options (newton_iterations, newton_tol, solver) as for pipeline.generate.
+    """
+    from .build import build
+    from .pipeline import generate
+
+    csource = generate(model, method, dt, substeps, precision, **implicit_options)
+    return run_built(build(csource, model), model, inputs, x0)
+
+
+def run_c(built, model: Model, inputs, x0=None) -> Trajectory:
+    """The states of run_built as a Trajectory of ticks + 1 rows (NaN after the failed tick)."""
+    run = run_built(built, model, inputs, x0)
+    rows = run.completed + 1
+    ts = np.zeros(run.ticks + 1)
+    xs = np.full((run.ticks + 1, model.nx), np.nan)
+    ts[:rows] = run.t
+    xs[:rows] = run.states
+    return Trajectory(ts=ts, xs=xs, completed=run.completed)
 
 
 def as_precision(values, precision: str):

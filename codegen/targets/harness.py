@@ -11,6 +11,8 @@ import math
 import struct
 from dataclasses import dataclass
 
+import numpy as np
+
 from .. import build as host_build
 from ..emit import CSource, comment_text
 from ..emit.printer import DOUBLE, FLOAT
@@ -168,26 +170,19 @@ def parse_run(text: str, nfields: int, where: str = "harness") -> Run:
 
 def host_reference(csource: CSource, model, rows) -> Run:
     """The same ticks through the host build (cffi module of build.build), as bit patterns."""
-    built = host_build.build(csource, model)
-    ffi, lib = built.ffi, built.lib
-    real = "double" if csource.precision == DOUBLE else "float"
+    from ..run import run_built
+
     fmt = "<d" if csource.precision == DOUBLE else "<f"
     unsigned = "<Q" if csource.precision == DOUBLE else "<I"
-    n, nx = len(rows), model.nx
-    ctx = ffi.new(f"{csource.prefix}_ctx_t *")
-    getattr(lib, f"{csource.prefix}_reset")(ctx)
-    u = ffi.new(f"{real}[]", [v for row in rows for v in row] or [0.0])
-    xs = ffi.new(f"{real}[]", (n + 1) * nx)
-    ts = ffi.new(f"{real}[]", n + 1)
-    status = ffi.new("int *")
-    done = lib.tw_run(ctx, n, u, xs, ts, status)
 
     def bits(v: float) -> int:
+        # The values are the build's own (float32 widens to float64 exactly): no rounding here.
         return struct.unpack(unsigned, struct.pack(fmt, v))[0]
 
-    out = [tuple([bits(ts[k])] + [bits(xs[k * nx + i]) for i in range(nx)])
-           for k in range(done + 1)]
-    return Run(rows=tuple(out), status=status[0] if done < n else 0)
+    run = run_built(host_build.build(csource, model), model,
+                    np.asarray(rows, dtype=np.float64).reshape(len(rows), len(model.inputs)))
+    out = [tuple([bits(t)] + [bits(x) for x in xs]) for t, xs in zip(run.t, run.states)]
+    return Run(rows=tuple(out), status=run.status)
 
 
 def _ordered(bits: int, precision: str) -> int:
