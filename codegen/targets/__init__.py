@@ -8,9 +8,9 @@
 
 from .check import TargetReport, check_on_target
 from .harness import compare_runs, default_inputs, parse_run
-from .spec import COST_KEYS, COUNTER_KINDS, Cost, Target, load_target, load_targets, parse_target
+from .spec import COUNTER_KINDS, Target, load_target, load_targets, parse_target
 from .tools import misra_findings, stack_usage
 
-__all__ = ["COST_KEYS", "COUNTER_KINDS", "Cost", "Target", "TargetReport", "check_on_target",
+__all__ = ["COUNTER_KINDS", "Target", "TargetReport", "check_on_target",
            "compare_runs", "default_inputs", "load_target", "load_targets", "misra_findings",
            "parse_target", "parse_run", "stack_usage"]

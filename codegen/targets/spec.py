@@ -1,8 +1,7 @@
-"""Target descriptions: one TOML file per target (compiler, flags, emulator, counter, costs).
+"""Target descriptions: one TOML file per target (compiler, flags, emulator, counter).
 
-A target is data: the compiler and its flags, the link recipe, the emulator command line, the
-instruction counter and a rough cost table. Every mistake in a file is one line naming the file
-and the key.
+A target is data: the compiler and its flags, the link recipe, the emulator command line and the
+instruction counter. Every mistake in a file is one line naming the file and the key.
 """
 
 from __future__ import annotations
@@ -12,7 +11,7 @@ import hashlib
 import os
 import re
 import tomllib
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import TickwrightError, located
@@ -21,18 +20,6 @@ from ..resources import targets_dir
 
 # Measurement kinds the harness knows: a counter read around each tick, or a count taken outside.
 COUNTER_KINDS = ("systick", "instret", "callgrind")
-COST_KEYS = ("add", "mul", "div", "sqrt", "transcendental")
-
-
-@dataclass(frozen=True)
-class Cost:
-    """Rough cycles per operation in one precision (see the comment in each target file)."""
-
-    add: float
-    mul: float
-    div: float
-    sqrt: float
-    transcendental: float
 
 
 @dataclass(frozen=True)
@@ -57,7 +44,6 @@ class Target:
     instructions_per_count: float
     counter_command: tuple[str, ...]
     counter_packages: tuple[str, ...]
-    cost: tuple[tuple[str, Cost], ...]
     fingerprint: str = field(default="", compare=False, repr=False)
 
     @property
@@ -69,29 +55,19 @@ class Target:
     def is_host(self) -> bool:
         return self.counter_kind == "callgrind"
 
-    def cost_for(self, precision: str) -> Cost:
-        return dict(self.cost)[precision]
-
-    def estimate_cycles(self, counts, precision: str) -> float:
-        """Rough cycles of an operation count (add, mul, div, sqrt, call attributes)."""
-        c = self.cost_for(precision)
-        return (counts.add * c.add + counts.mul * c.mul + counts.div * c.div
-                + counts.sqrt * c.sqrt + counts.call * c.transcendental)
-
     def to_dict(self) -> dict:
         return dict(id=self.id, description=self.description, path=str(self.path), cc=self.cc,
                     cflags=list(self.cflags), ldflags=list(self.ldflags),
                     default_precision=self.default_precision,
                     hardware_precisions=list(self.hardware_precisions),
-                    emulator=list(self.run_command), counter=self.counter_kind,
-                    cost={p: asdict(c) for p, c in self.cost})
+                    emulator=list(self.run_command), counter=self.counter_kind)
 
 
 # ---- loading and validation ---------------------------------------------------------------------
 
 _TOP_KEYS = {"id": str, "description": str, "cc": str, "nm": str, "size": str, "packages": list,
              "cflags": list, "ldflags": list, "default_precision": str,
-             "hardware_precisions": list, "run": dict, "counter": dict, "cost": dict}
+             "hardware_precisions": list, "run": dict, "counter": dict}
 _RUN_KEYS = {"command": list, "packages": list, "timeout_s": (int, float)}
 _COUNTER_KEYS = {"kind": str, "instructions_per_count": (int, float), "command": list,
                  "packages": list}
@@ -171,20 +147,6 @@ def parse_target(path: str | Path) -> Target:
     if counter["kind"] == "callgrind" and ("{elf}" not in joined or "{advance}" not in joined):
         raise _fail(path, "counter.command", "a callgrind counter needs a command with the "
                     "placeholders '{elf}' and '{advance}'")
-    cost = []
-    for precision in PRECISIONS:
-        table = data["cost"].get(precision)
-        if not isinstance(table, dict):
-            raise _fail(path, f"cost.{precision}", "missing; give rough cycles for "
-                        f"{', '.join(COST_KEYS)}")
-        _check_keys(path, table, {k: (int, float) for k in COST_KEYS}, f"cost.{precision}.")
-        for k in COST_KEYS:
-            if table[k] <= 0:
-                raise _fail(path, f"cost.{precision}.{k}", "must be a positive number of cycles")
-        cost.append((precision, Cost(**{k: float(table[k]) for k in COST_KEYS})))
-    for extra in data["cost"]:
-        if extra not in PRECISIONS:
-            raise _fail(path, f"cost.{extra}", f"unknown precision; use {' or '.join(PRECISIONS)}")
     return Target(
         id=data["id"], description=data["description"], path=path, cc=data["cc"],
         nm=data["nm"], size=data["size"], packages=tuple(data["packages"]),
@@ -194,7 +156,7 @@ def parse_target(path: str | Path) -> Target:
         timeout_s=float(run["timeout_s"]), counter_kind=counter["kind"],
         instructions_per_count=float(counter["instructions_per_count"]),
         counter_command=command, counter_packages=tuple(counter.get("packages", ())),
-        cost=tuple(cost), fingerprint=hashlib.sha256(raw).hexdigest())
+        fingerprint=hashlib.sha256(raw).hexdigest())
 
 
 def load_targets(extra_dir: str | Path | None = None) -> dict[str, Target]:
