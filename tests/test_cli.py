@@ -20,7 +20,8 @@ def run(*args):
     return CliRunner().invoke(main, [str(a) for a in args])
 
 
-@pytest.mark.parametrize("command", ["emit", "check", "replay", "methods", "demo"])
+@pytest.mark.parametrize("command", ["emit", "check", "replay", "methods", "advise", "targets",
+                                     "demo"])
 def test_every_command_has_help(command):
     result = run(command, "--help")
     assert result.exit_code == 0 and "Usage:" in result.output
@@ -168,6 +169,7 @@ def test_demo_runs_the_whole_job(tmp_path):
     for needle in ("files written:", "axis.c", "method and tick:", "cost per tick:",
                    "verdict: PASS"):
         assert needle in result.stdout
+    assert sorted(p.name for p in (tmp_path / "demo").iterdir()) == ["axis.c", "axis.h"]
 
 
 @pytest.mark.parametrize("target", ["host", "cortex-m4f"])
@@ -203,6 +205,15 @@ def test_targets_lists_the_six_cores():
     assert result.exit_code == 0
     ids = {t["id"] for t in json.loads(result.stdout)}
     assert ids == {"host", "cortex-m4f", "cortex-m3", "cortex-m7", "rv32imac", "rv32imafc"}
+
+
+def test_targets_table_names_the_program_in_words():
+    result = run("targets")
+    assert result.exit_code == 0, result.output
+    lines = result.stdout.splitlines()
+    assert len(lines) == 1 + 6 and "{elf}" not in result.stdout
+    assert next(l for l in lines if l.startswith("host ")).endswith("gcc  <program>")
+    assert next(l for l in lines if l.startswith("cortex-m4f ")).endswith("-kernel <program>")
 
 
 def test_a_tableau_in_rounded_decimals_keeps_its_stated_order(tmp_path):

@@ -122,6 +122,26 @@ def check_on_target(csource: CSource, model, target: Target | str, ticks: int = 
     return report
 
 
+def check_on_targets(model, method, dt: float, substeps: int, precisions, ticks: int, targets,
+                     options: dict | None = None, progress=None) -> list[TargetReport]:
+    """check_on_target for each target in each precision, on the C that pipeline.generate writes.
+
+    options: generation options of implicit methods (newton_iterations, newton_tol, solver).
+    """
+    from ..pipeline import generate
+
+    say = progress or (lambda message: None)
+    reports = []
+    for target in targets:
+        target = load_target(target)
+        for precision in precisions:
+            say(f"target {target.id} ({precision}): cross-compile, run {ticks} ticks on the "
+                "emulator")
+            csource = generate(model, method, dt, substeps, precision, **(options or {}))
+            reports.append(check_on_target(csource, model, target, ticks=ticks))
+    return reports
+
+
 def _check_in(folder: Path, csource: CSource, model, target: Target, rows, harness: str,
               misra_job) -> TargetReport:
     p = csource.prefix

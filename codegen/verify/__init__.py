@@ -12,7 +12,7 @@ Three checks, each with its own verdict:
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 
 from ..build import strict_compile
 from ..methods import Method
@@ -29,6 +29,9 @@ __all__ = ["DEFAULT_ACCURACY", "ORDER_TOLERANCE", "CheckReport", "CrossCheck", "
 
 @dataclass(frozen=True)
 class CheckReport:
+    """What check() found: the strict compile's command, a cross-check per precision, the order
+    study (None when skipped) and the overall verdict."""
+
     method: str
     model: str
     dt: float
@@ -37,7 +40,6 @@ class CheckReport:
     cross_checks: tuple[CrossCheck, ...]
     order: OrderStudy | None
     passed: bool
-    extras: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
         d = asdict(self)
