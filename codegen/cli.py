@@ -214,7 +214,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
 
         say(f"pictures into {plot_dir}")
         pictures = tuple(check_pictures(model, method, dt, substeps, precisions, ticks, report,
-                                        plot_dir, plot_format))
+                                        plot_dir, plot_format, options))
     target_reports = tuple(check_on_targets(model, method, dt, substeps, precisions, ticks,
                                             targets, options, progress=say))
     outcome = CheckOutcome(report, method.name, estimates, target_reports, pictures)

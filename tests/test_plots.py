@@ -92,3 +92,41 @@ def test_check_and_advise_write_their_pictures(tmp_path):
                                   "--plot", str(tmp_path), "--plot-format", "svg"])
     assert result.exit_code == 0, result.output
     assert (tmp_path / "heater-rk4-stability.svg").exists()
+
+
+def test_check_plots_an_exact_method_without_a_measured_order(tmp_path):
+    # zoh-exact has no order to measure: the convergence picture is titled with the study's note.
+    model = str(examples_dir() / "battery.toml")
+    result = CliRunner().invoke(main, ["check", model, "--method", "zoh-exact", "--dt", "1",
+                                       "--plot", str(tmp_path)])
+    assert result.exit_code == 0, result.output
+    assert "Traceback" not in result.output
+    assert sorted(p.name for p in tmp_path.iterdir()) == [
+        "battery-zoh-exact-convergence.png", "battery-zoh-exact-trajectories.png"]
+    study = OrderStudy(None, 2.0, (2, 4, 8), (1e-16,) * 3, (), None, True, "exact")
+    assert plots.convergence_title("battery", "zoh-exact", study) == "battery: zoh-exact, exact"
+
+
+def test_check_pictures_build_the_c_that_was_checked(tmp_path, monkeypatch):
+    # The pictures regenerate the C: with an implicit method they must pass the same Newton
+    # limit, tolerance and linear solve as the check, or they could show another build.
+    import codegen.pipeline
+
+    calls = []
+    generate = codegen.pipeline.generate
+
+    def spy(*args, **kwargs):
+        calls.append(kwargs)
+        return generate(*args, **kwargs)
+
+    monkeypatch.setattr(codegen.pipeline, "generate", spy)
+    model = str(examples_dir() / "heater.toml")
+    result = CliRunner().invoke(main, [
+        "check", model, "--method", "sdirk2", "--dt", "1", "--ticks", "20", "--no-order",
+        "--newton-iterations", "3", "--newton-tol", "1e-5", "--linear-solve", "dense-lu",
+        "--plot", str(tmp_path)])
+    assert result.exit_code == 0, result.output
+    assert len(calls) >= 2  # at least one C build per precision for the trajectories
+    for kwargs in calls:
+        assert (kwargs["newton_iterations"], kwargs["newton_tol"], kwargs["solver"]) == \
+            (3, 1e-5, "dense-lu"), kwargs

@@ -149,9 +149,22 @@ def trajectories(ts, runs: dict, names, path, title: str = "") -> Path:
     return _save(fig, path)
 
 
+def convergence_title(model_name: str, method_id: str, study) -> str:
+    """The convergence picture's title: the measured order, or the study's note when it has none
+    (an exact discretization has no order to measure)."""
+    if study.measured is None:
+        return f"{model_name}: {method_id}, {study.note or 'no measured order'}"
+    return (f"{model_name}: {method_id}, measured order {study.measured:.2f} (expected "
+            f"{study.expected})")
+
+
 def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: int, report,
-                   out_dir, fmt: str = "png") -> list[Path]:
-    """The pictures of `tickwright check`: trajectories of the C builds and the convergence plot."""
+                   out_dir, fmt: str = "png", options: dict | None = None) -> list[Path]:
+    """The pictures of `tickwright check`: trajectories of the C builds and the convergence plot.
+
+    options: the generation options of implicit methods the check used, so the pictures show the
+    same C as the check.
+    """
     from .. import reference
     from ..build import build
     from ..pipeline import generate
@@ -164,8 +177,8 @@ def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: i
     runs = {}
     ts = None
     for precision in precisions:
-        c_run = run_c(build(generate(model, method, dt, substeps, precision), model), model,
-                      as_precision(u, precision))
+        csource = generate(model, method, dt, substeps, precision, **(options or {}))
+        c_run = run_c(build(csource, model), model, as_precision(u, precision))
         runs[f"C ({precision})"] = c_run.xs[: c_run.completed + 1]
         ts = c_run.ts
     ref = reference.run(model, method, dt, substeps, u)
@@ -180,8 +193,7 @@ def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: i
     if report.order is not None and report.order.errors_c:
         written.append(convergence(
             report.order, out / f"{model.name}-{method.id}-convergence.{fmt}",
-            title=f"{model.name}: {method.id}, measured order "
-                  f"{report.order.measured:.2f} (expected {report.order.expected})"))
+            title=convergence_title(model.name, method.id, report.order)))
     return written
 
 
