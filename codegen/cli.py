@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import functools
-import sys
 from pathlib import Path
 
 import click
@@ -21,16 +20,25 @@ def fail(message: str) -> None:
     raise click.exceptions.Exit(1)
 
 
+def verbose_wanted() -> bool:
+    """Whether the group's --verbose flag was given."""
+    ctx = click.get_current_context(silent=True)
+    return bool(ctx is not None and ctx.find_root().params.get("verbose"))
+
+
 def guarded(fn):
-    """Turn every TickwrightError into one line on stderr and exit status 1."""
+    """Turn every TickwrightError into one line on stderr and exit status 1.
+
+    With --verbose, a compiler failure first prints the command and the compiler's whole output.
+    """
 
     @functools.wraps(fn)
     def wrapper(*args, **kwargs):
         try:
             return fn(*args, **kwargs)
         except BuildError as exc:
-            if exc.output and "--verbose" in sys.argv:
-                click.echo(exc.details(), err=True)
+            if verbose_wanted() and (exc.command or exc.output):
+                click.echo(exc.details().rstrip("\n"), err=True)
             fail(str(exc))
         except TickwrightError as exc:
             fail(str(exc))
@@ -110,7 +118,10 @@ def load(model_path: Path):
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="tickwright")
-def main():
+@click.option("--verbose", is_flag=True,
+              help="When a C compiler fails, also print its command and its whole output "
+                   "(before the one-line error).")
+def main(verbose):
     """Turn an ODE model and a Runge-Kutta method into checked, dependency-free C for firmware.
 
     Validate the generated code on the real hardware; it is not qualified for safety functions

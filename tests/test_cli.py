@@ -216,6 +216,29 @@ def test_targets_table_names_the_program_in_words():
     assert next(l for l in lines if l.startswith("cortex-m4f ")).endswith("-kernel <program>")
 
 
+def fake_compiler(tmp_path):
+    """A C compiler that fails with two lines of output, the second only in the details."""
+    cc = tmp_path / "fakecc"
+    cc.write_text("#!/bin/sh\necho 'heater.c:1:1: error: first line' >&2\n"
+                  "echo 'heater.c:2:1: note: the detail' >&2\nexit 1\n")
+    cc.chmod(0o755)
+    return str(cc)
+
+
+@pytest.mark.parametrize("verbose", [False, True])
+def test_verbose_adds_the_compiler_output_to_the_one_line_error(tmp_path, verbose):
+    args = ["--verbose"] if verbose else []
+    result = CliRunner().invoke(main, args + ["check", HEATER, "--method", "rk4", "--dt", "0.5",
+                                              "--no-order"], env={"CC": fake_compiler(tmp_path)})
+    assert result.exit_code == 1
+    errors = [line for line in result.output.splitlines() if line.startswith("tickwright: error")]
+    assert len(errors) == 1 and "does not compile cleanly" in errors[0]
+    assert "first line" in errors[0] and "the detail" not in errors[0]
+    assert ("heater.c:2:1: note: the detail" in result.output) is verbose
+    assert (f"{fake_compiler(tmp_path)} -std=c99" in result.output.replace(errors[0], "")) is verbose
+    assert "Traceback" not in result.output
+
+
 def test_a_tableau_in_rounded_decimals_keeps_its_stated_order(tmp_path):
     # Alexander's L-stable SDIRK3 as often printed, to 15-16 digits (gamma = 0.435866521508459,
     # REFERENCES.md, from memory): its conditions hold only to the digits given.
