@@ -10,7 +10,7 @@ from click.testing import CliRunner
 
 from codegen.cli import main
 
-from conftest import EXAMPLES
+from conftest import EXAMPLES, ROOT
 
 HEATER = str(EXAMPLES / "heater.toml")
 AXIS = str(EXAMPLES / "axis.toml")
@@ -170,6 +170,13 @@ def test_demo_runs_the_whole_job(tmp_path):
                    "verdict: PASS"):
         assert needle in result.stdout
     assert sorted(p.name for p in (tmp_path / "demo").iterdir()) == ["axis.c", "axis.h"]
+
+
+def test_the_demo_s_default_folder_is_ignored_by_git():
+    # `tickwright demo` in a checkout must not leave untracked files behind.
+    default = next(p.default for p in main.commands["demo"].params if p.name == "out_dir")
+    ignored = [line.strip() for line in (ROOT / ".gitignore").read_text().splitlines()]
+    assert f"{default}/" in ignored or f"/{default}/" in ignored, (default, ignored)
 
 
 @pytest.mark.parametrize("target", ["host", "cortex-m4f"])
