@@ -20,11 +20,9 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
 from codegen import reference  # noqa: E402
-from codegen.build import build  # noqa: E402
 from codegen.methods import builtin  # noqa: E402
 from codegen.model import load_model  # noqa: E402
-from codegen.pipeline import generate  # noqa: E402
-from codegen.run import run_c  # noqa: E402
+from codegen.run import replay  # noqa: E402
 
 TICK = 1e-3
 TICKS = 300
@@ -32,21 +30,20 @@ TICKS = 300
 SETTLE = 0.05
 VOLTAGE = 12.0
 METHODS = ("rk4", "backward-euler", "sdirk2", "sdirk3", "radau-iia3", "ros2")
-# Scale of each state for the error column: the width of its declared range.
-STATUS = {0: "OK", 1: "NONFINITE", 2: "NO_CONVERGENCE", 3: "SINGULAR"}
 
 
 def error_at(model, method, dt, horizon, precision):
     n = int(round(horizon / dt))
     u = np.full((n, 1), VOLTAGE)
     exact = reference.high_accuracy(model, dt, u)
-    run = run_c(build(generate(model, method, dt, precision=precision), model), model, u)
+    run = replay(model, method, dt, u, precision=precision)
+    # Scale of each state for the error column: the width of its declared range.
     widths = np.array([s.range[1] - s.range[0] for s in model.states])
-    if run.completed < n:
+    if not run.finished:
         return run, None
     # After the first SETTLE seconds: the electrical transient of the step is over by then.
     skip = int(round(SETTLE / dt))
-    return run, float(np.max(np.abs(run.xs[skip:] - exact.xs[skip:]) / widths))
+    return run, float(np.max(np.abs(run.states[skip:] - exact.xs[skip:]) / widths))
 
 
 def main() -> None:
@@ -61,7 +58,7 @@ def main() -> None:
         method = builtin(method_id)
         run, err = error_at(model, method, TICK, TICK * TICKS, "float")
         if err is None:
-            where = f"stopped at tick {run.completed + 1}: diverged"
+            where = f"stopped at tick {run.completed + 1}: {run.status_name}"
             print(f"{method_id:<16} {where:<34} {'-':>20}")
             continue
         errors = [error_at(model, method, dt, 0.1, "double")[1] for dt in (2e-3, 1e-3, 5e-4)]

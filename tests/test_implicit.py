@@ -21,6 +21,7 @@ from codegen import reference
 from codegen.build import build, strict_compile
 from codegen.methods import with_order
 from codegen.errors import MethodError, ModelError
+from codegen.emit import STATUS_CODES
 from codegen.discretize import DENSE_LU, ELIMINATION, INVERSE, discretize_implicit, jacobian
 from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_tableau)
 from codegen.model import Input, Parameter, State, define
@@ -52,7 +53,7 @@ STIFF_ORDER_TOLERANCE = 0.3
 
 
 def status_of(model, name):
-    return {"OK": 0, "NONFINITE": 1, "NO_CONVERGENCE": 2, "SINGULAR": 3}[name]
+    return {n: value for n, value, _ in STATUS_CODES}[name]
 
 
 def fields(model, ctx):
