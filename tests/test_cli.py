@@ -242,7 +242,8 @@ def test_verbose_adds_the_compiler_output_to_the_one_line_error(tmp_path, verbos
     assert len(errors) == 1 and "does not compile cleanly" in errors[0]
     assert "first line" in errors[0] and "the detail" not in errors[0]
     assert ("heater.c:2:1: note: the detail" in result.output) is verbose
-    assert (f"{fake_compiler(tmp_path)} -std=c99" in result.output.replace(errors[0], "")) is verbose
+    details = result.output.replace(errors[0], "")
+    assert (f"{fake_compiler(tmp_path)} -std=c99" in details) is verbose
     assert "Traceback" not in result.output
 
 
