@@ -64,7 +64,8 @@ def test_emitting_twice_gives_identical_bytes(axis):
 
 
 def test_output_does_not_depend_on_the_hash_seed():
-    # sympy's cse with order='none' and any set iteration could depend on hashing (SCALING.md).
+    # sympy's cse docstring warns that order='none' may depend on hashing, and iterating over a set
+    # of sympy objects did change the output between hash seeds (measured here).
     script = ("from codegen.model import load_model; from codegen.methods import builtin; "
               "from codegen.pipeline import generate; import sys; "
               "c = generate(load_model('examples/axis.toml'), builtin('rk4'), 1e-4); "
