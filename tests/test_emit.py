@@ -86,7 +86,9 @@ def test_comments_cannot_be_ended_or_start_directives(write_model):
     model = load_model(write_model(text))
     csource = generate(model, builtin("euler"), 0.1)
     for _, text in csource.files:
-        for comment in re.findall(r"/\*(.*?)\*/", text, flags=re.S):
+        comments = re.findall(r"/\*(.*?)\*/", text, flags=re.S)
+        assert comments  # every file opens with its preamble comment
+        for comment in comments:
             assert "/*" not in comment
         assert not re.search(r"^\s*#\s*define X", text, flags=re.M)
         assert "evil" not in text.replace("* / evil", "")
