@@ -1,6 +1,6 @@
 #!/bin/sh
 # Install what the target checks need (Debian/Ubuntu): host gcc, Arm and RISC-V bare-metal gcc with
-# picolibc, the QEMU system emulators, cppcheck and valgrind. The lean package set of EMBEDDED.md,
+# picolibc, the QEMU system emulators, cppcheck and valgrind: the package set of docs/toolchains.md,
 # without recommended packages. Idempotent: installs only what is missing, and exits non-zero if
 # anything is still missing afterwards.
 set -u

@@ -1,8 +1,9 @@
 """Step-size advice (codegen.advise), the methods table and the run-time error estimate.
 
-Outside references: stability limits from the shared REFERENCES.md (HNW = Hairer, Norsett & Wanner,
-Solving ODEs I; HW = Hairer & Wanner, Solving ODEs II; "[mem]" = from memory), closed-form
-eigenvalues of linear models, scipy's brentq and solve_ivp, and the generated C itself.
+Outside references: published stability limits (HNW = Hairer, Norsett & Wanner, Solving ODEs I,
+2nd ed., 1993; HW = Hairer & Wanner, Solving ODEs II, 2nd ed., 1996; Lambert, Numerical Methods for
+Ordinary Differential Systems, 1991; "[mem]" = from memory), closed-form eigenvalues of linear
+models, scipy's brentq and solve_ivp, and the generated C itself.
 """
 
 from __future__ import annotations
@@ -63,7 +64,7 @@ def taylor(p):
 
 
 def dp5(z):
-    # Dormand-Prince 5: R = T5 + z^6/600 (REFERENCES.md; HNW I IV.2 [mem]).
+    # Dormand-Prince 5: R = T5 + z^6/600 (HNW I IV.2 [mem]).
     return taylor(5)(z) + z ** 6 / 600
 
 
@@ -83,7 +84,8 @@ def test_max_stable_dt_matches_the_analytic_value(method_id, R):
     expected = min(ray_limit(R, -FAST), ray_limit(R, pair()))
     if method_id == "euler":
         assert math.isclose(expected, min(2 / FAST, 2 * ZETA * OMEGA / OMEGA ** 2), rel_tol=1e-9)
-    # Real-axis limits -2.785293563 (RK4) and -3.306567893 (DP5): REFERENCES.md, Lambert 1991 [mem].
+    # Real-axis limits -2.785293563 (RK4; Lambert 1991, section 5.12 [mem]) and -3.306567893 (DP5;
+    # HNW I IV.2 [mem]), to the digits of the root of |R(x)| = 1.
     if method_id == "rk4":
         assert math.isclose(ray_limit(R, -FAST), 2.785293563e-3, rel_tol=1e-8)
     if method_id == "dp5":
@@ -91,12 +93,14 @@ def test_max_stable_dt_matches_the_analytic_value(method_id, R):
     assert abs(got - expected) <= 0.01 * expected
 
 
-def test_a_stable_methods_are_unbounded_and_growing_modes_are_left_out():
+@pytest.mark.parametrize("method_id", ["backward-euler", "sdirk2", "radau-iia3", "ros2",
+                                       "zoh-exact"])
+def test_a_stable_methods_are_unbounded_and_growing_modes_are_left_out(method_id):
     values = np.array([-1e6, -3 + 40j, -3 - 40j, 0.0])
-    # A-stable: |R| <= 1 on the whole left half plane (HW IV.3, REFERENCES.md [mem]).
-    for method_id in ("backward-euler", "sdirk2", "radau-iia3", "ros2", "zoh-exact"):
-        if method_id in builtin_ids():
-            assert advice_mod.max_stable_dt(builtin(method_id), values) == math.inf
+    # A-stable: |R| <= 1 on the whole left half plane (HW IV.3 [mem]; Verwer, Spee, Blom &
+    # Hundsdorfer 1999 for ROS2; |exp(z)| <= 1 there for the exact step, common practice, no source).
+    assert method_id in builtin_ids()
+    assert advice_mod.max_stable_dt(builtin(method_id), values) == math.inf
     assert list(envelope_mod.decaying(np.array([2.0, -1.0]))) == [-1.0]
 
 
@@ -149,7 +153,8 @@ def test_stiff_model_recommends_an_implicit_method_with_implicit_candidates():
     advice = advice_mod.advise(model, methods=pool, tolerance=1e-3)
     kinds = {r.id: r.kind for r in advice.methods}
     assert kinds[advice.recommended["method"]] in IMPLICIT_KINDS
-    # The explicit ones are held to the fast sensor's limit, about 2.8/1e4 s for RK4 (REFERENCES.md).
+    # The explicit ones are held to the fast sensor's limit, about 2.8/1e4 s for RK4 (Lambert 1991,
+    # section 5.12 [mem]).
     assert advice.row("rk4").max_stable_dt < 3e-4
     assert advice.recommended["dt"] > 10 * advice.row("rk4").max_stable_dt
 
@@ -200,7 +205,8 @@ def test_requested_dt_beyond_the_limit_warns_how_far():
     model = load_model(examples_dir() / "axis.toml")
     rk4 = builtin("rk4")
     advice = advice_mod.advise(model, rk4, dt=2e-3, methods=[rk4])
-    # RK4's real-axis limit 2.785293563 (REFERENCES.md) over the fastest eigenvalue.
+    # RK4's real-axis limit 2.785293563 (Lambert 1991, section 5.12 [mem]) over the fastest
+    # eigenvalue.
     fastest = float(np.max(np.abs(advice.eigenvalues)))
     assert math.isclose(advice.chosen_max_stable_dt, 2.785293563 / fastest, rel_tol=1e-6)
     assert advice.requested["stable"] is False
@@ -215,9 +221,10 @@ def test_advise_cli_json_has_the_promised_keys_and_exits_1_on_an_unstable_dt():
     result = runner.invoke(main, ["advise", model, "--method", "euler", "--dt", "500", "--json"])
     assert result.exit_code == 1, result.output
     data = json.loads(result.stdout)
-    # Euler's limit is 2/|lambda| (REFERENCES.md), |lambda| largest at C_th = 80: 2 * 2.5 * 80 s.
+    # Euler's limit is 2/|lambda| (|1 + z| <= 1; common practice, no source), |lambda| largest at
+    # C_th = 80: 2 * 2.5 * 80 s.
     assert math.isclose(data["max_stable_dt"], 400.0, rel_tol=1e-9)
-    assert all(len(v) == 2 for v in data["eigenvalues"])
+    assert data["eigenvalues"] and all(len(v) == 2 for v in data["eigenvalues"])
     assert set(data["recommended"]) == {"method", "dt", "precision"}
     assert data["recommended"]["precision"] in ("float", "double")
     assert data["requested"]["stable"] is False
@@ -241,29 +248,31 @@ def test_methods_json_is_complete_for_every_kind():
     keys = {"name", "stages", "order", "embedded_order", "kind", "a_stable", "l_stable",
             "real_axis_limit", "imag_axis_limit", "source"}
     assert all(keys <= set(r) for r in rows.values())
-    # Real-axis limits (REFERENCES.md; Lambert 1991 [mem]) and embedded orders (bs3, dp5).
+    # Real-axis limits (Lambert 1991, section 5.12 [mem]; DP5's imaginary-axis limit HNW I IV.2
+    # [mem]) and embedded orders (Bogacki & Shampine 1989 [mem]; Dormand & Prince 1980).
     assert math.isclose(rows["rk4"]["real_axis_limit"], -2.785293563, rel_tol=1e-9)
     assert math.isclose(rows["dp5"]["imag_axis_limit"], 0.997189, rel_tol=1e-5)
     assert (rows["bs3"]["order"], rows["bs3"]["embedded_order"]) == (3, 2)
     assert rows["euler"]["a_stable"] is False
-    # A- and L-stability (HW IV.3-IV.6, REFERENCES.md [mem]); SDIRK3's data are rounded, its order
-    # 3 needs the rounded-data tolerance.
+    # A- and L-stability (HW IV.3-IV.6 [mem]; Verwer et al. 1999 for ROS2); SDIRK3's data are
+    # rounded, its order 3 needs the rounded-data tolerance.
     expected = {"backward-euler": (True, True, 1), "trapezoidal": (True, False, 2),
                 "gauss2": (True, False, 4), "radau-iia3": (True, True, 5),
                 "sdirk3": (True, True, 3), "ros2": (True, True, 2)}
     for method_id, (a, l, p) in expected.items():
-        if method_id in rows:
-            r = rows[method_id]
-            assert (r["a_stable"], r["l_stable"], r["order"]) == (a, l, p), method_id
-            assert r["real_axis_limit"] is None
+        assert method_id in rows, method_id
+        r = rows[method_id]
+        assert (r["a_stable"], r["l_stable"], r["order"]) == (a, l, p), method_id
+        assert r["real_axis_limit"] is None
     exact = [r for r in rows.values() if r["kind"] == "exact"]
+    assert [r["id"] for r in exact] == ["zoh-exact"]
     assert all(r["order"] is None and r["a_stable"] for r in exact)
 
 
 def test_methods_analyses_a_user_tableau(tmp_path):
     path = tmp_path / "ralston3.toml"
     # Ralston's 3rd-order method (Ralston 1962, Math. Comp. 16 [mem]); any 3-stage order-3 explicit
-    # method has the real-axis limit -2.512745327 (REFERENCES.md).
+    # method has the real-axis limit -2.512745327 (Lambert 1991, section 5.12 [mem]).
     path.write_text('name = "Ralston 3"\nc = [0, "1/2", "3/4"]\nb = ["2/9", "1/3", "4/9"]\n'
                     'a = [[0, 0, 0], ["1/2", 0, 0], [0, "3/4", 0]]\n', encoding="utf-8")
     result = CliRunner().invoke(main, ["methods", "--tableau", str(path), "--json"])
@@ -300,7 +309,8 @@ def test_c_error_estimate_equals_the_reference_embedded_difference(method_id, pr
 @pytest.mark.parametrize("method_id, embedded", [("bs3", 2), ("dp5", 4)])
 def test_c_error_estimate_scales_like_h_to_the_embedded_order_plus_one(method_id, embedded):
     # The embedded solution has order p_hat, so its local error is C h^(p_hat + 1) (HNW I II.4
-    # [mem]); halving h divides the estimate by about 2^(p_hat + 1). Orders: REFERENCES.md.
+    # [mem]); halving h divides the estimate by about 2^(p_hat + 1). Embedded orders: Bogacki &
+    # Shampine 1989 [mem]; Dormand & Prince 1980.
     model = load_model(examples_dir() / "axis.toml")
     method = builtin(method_id)
     x0 = (3.0, 120.0, 0.1)

@@ -76,7 +76,8 @@ def test_check_text_names_each_check():
 
 def test_check_fails_with_exit_1_when_the_step_is_unstable():
     # The axis' electrical pole is about -2970/s: Euler at 1 ms has h*lambda = -2.97 < -2
-    # (forward Euler's real-axis limit, REFERENCES.md), so the run diverges.
+    # (forward Euler's real-axis limit, from |1 + z| <= 1; common practice, no source), so the run
+    # diverges.
     result = run("check", AXIS, "--method", "euler", "--dt", "1e-3", "--precision", "double",
                  "--ticks", "2000", "--no-order")
     assert result.exit_code == 1
@@ -249,7 +250,8 @@ def test_verbose_adds_the_compiler_output_to_the_one_line_error(tmp_path, verbos
 
 def test_a_tableau_in_rounded_decimals_keeps_its_stated_order(tmp_path):
     # Alexander's L-stable SDIRK3 as often printed, to 15-16 digits (gamma = 0.435866521508459,
-    # REFERENCES.md, from memory): its conditions hold only to the digits given.
+    # Alexander 1977, SIAM J. Numer. Anal. 14, from memory): its conditions hold only to the
+    # digits given.
     g, c2, b1, b2 = "0.435866521508459", "0.7179332607542295", "1.2084966491760101", \
         "-0.6443631706844691"
     tableau = tmp_path / "sdirk3.toml"

@@ -1,8 +1,9 @@
 """Implicit, linearly implicit and exact methods: generated C against outside references.
 
-Sources, abbreviated as in the shared REFERENCES.md: HW = Hairer & Wanner, Solving ODEs II, 2nd
-ed., 1996; "[mem]" marks a value recalled from that source, not read from the page. Outside
-references used here: scipy's solve_ivp (DOP853 at rtol 1e-12) and scipy.signal.cont2discrete.
+Sources: HW = Hairer & Wanner, Solving Ordinary Differential Equations II, 2nd ed., 1996; HNW =
+Hairer, Norsett & Wanner, Solving Ordinary Differential Equations I, 2nd ed., 1993; "[mem]" marks a
+value recalled from that source, not read from the page. Outside references used here: scipy's
+solve_ivp (DOP853 at rtol 1e-12) and scipy.signal.cont2discrete.
 """
 
 from __future__ import annotations
@@ -27,7 +28,7 @@ from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_
 from codegen.model import Input, Parameter, State, define
 from codegen.pipeline import generate
 from codegen.run import run_c
-from codegen.verify import check
+from codegen.verify import ORDER_TOLERANCE, check
 
 from conftest import EXAMPLES, ROOT
 
@@ -36,24 +37,27 @@ RK_IDS = ["backward-euler", "trapezoidal", "implicit-midpoint", "gauss2", "radau
 ROSENBROCK_IDS = ["rosenbrock-euler", "ros2"]
 IMPLICIT_IDS = RK_IDS + ROSENBROCK_IDS
 
-# Classical orders: REFERENCES.md table "Tableaux and their orders" (HW IV.5 [mem]; Alexander 1977
-# [mem]; Verwer, Spee, Blom & Hundsdorfer 1999 for ROS2; HW IV.7 [mem] for Rosenbrock-Euler).
+# Classical orders: HW IV.5 [mem]; Alexander 1977, SIAM J. Numer. Anal. 14 [mem]; Verwer, Spee,
+# Blom & Hundsdorfer 1999, SIAM J. Sci. Comput. 20(4) for ROS2; HW IV.7 [mem] for Rosenbrock-Euler.
 CLASSICAL_ORDER = {"backward-euler": 1, "trapezoidal": 2, "implicit-midpoint": 2, "gauss2": 4,
                    "radau-iia2": 3, "radau-iia3": 5, "lobatto-iiic2": 2, "sdirk2": 2, "sdirk3": 3,
                    "rosenbrock-euler": 1, "ros2": 2}
-# Observed orders on Prothero-Robinson at L = -1e6 (Prothero & Robinson 1974, Math. Comp. 28; HW
-# IV.15 [mem]; REFERENCES.md "Order reduction on stiff problems").
+# Observed orders on Prothero-Robinson at L = -1e6: about the stage order (Prothero & Robinson
+# 1974, Math. Comp. 28; HW IV.15 [mem]).
 STIFF_ORDER = {"backward-euler": 1, "sdirk2": 1, "sdirk3": 1, "lobatto-iiic2": 1,
                "trapezoidal": 2, "implicit-midpoint": 2, "gauss2": 2, "radau-iia2": 2,
                "radau-iia3": 3}
-# The acceptance bound on a measured classical order (the project's, verify.ORDER_TOLERANCE).
-ORDER_TOLERANCE = 0.15
-# Order reduction is an asymptotic statement "about the stage order" (REFERENCES.md): a wider band.
+# Order reduction is an asymptotic statement "about the stage order" (HW IV.15 [mem]): a wider band
+# than the project's acceptance bound on a classical order (ORDER_TOLERANCE).
 STIFF_ORDER_TOLERANCE = 0.3
 
 
-def status_of(model, name):
-    return {n: value for n, value, _ in STATUS_CODES}[name]
+def status_of(built, model, name):
+    """The generated C's own status constant (its public API), e.g. QUAD_NO_CONVERGENCE."""
+    codes = {n: getattr(built.lib, f"{model.name.upper()}_{n}")
+             for n in ("OK", "NONFINITE", "NO_CONVERGENCE", "SINGULAR")}
+    assert len(set(codes.values())) == len(codes)  # distinct, so a wrong status cannot pass
+    return codes[name]
 
 
 def fields(model, ctx):
@@ -85,6 +89,7 @@ def test_every_method_passes_the_check_on_the_demo_models(name, method_id):
     # The cross-check compares with the independent numpy reference; accuracy compares with
     # scipy's solve_ivp (the outside reference) to 1 % of each state's range.
     assert report.passed, [c for c in report.cross_checks]
+    assert [c.precision for c in report.cross_checks] == ["float", "double"]
     assert all(c.completed == c.ticks for c in report.cross_checks)
 
 
@@ -96,6 +101,7 @@ def test_zoh_exact_passes_the_whole_check_on_the_linear_demo():
     assert report.passed, report
     # Exact: the C matches solve_ivp (the outside reference) to its own tolerance at any step.
     assert report.order.passed and report.order.measured is None
+    assert report.cross_checks
     assert all(c.error_vs_high_accuracy < 1e-6 for c in report.cross_checks)
 
 
@@ -199,7 +205,7 @@ def test_prothero_robinson_in_c_matches_the_reference_and_keeps_the_stiff_order(
 
 @pytest.mark.parametrize("method_id", IMPLICIT_IDS)
 def test_stable_at_large_h_lambda(method_id):
-    # A-stability: every method here is A-stable (HW IV.3-IV.7 [mem], REFERENCES.md), so at
+    # A-stability: every method here is A-stable (HW IV.3-IV.7 [mem]; Verwer et al. 1999), so at
     # h*L = -1e6 an initial error of 1 is not amplified (|R(z)| <= 1): the error stays within the
     # initial error plus local errors of a few tenths; an unstable step would multiply it by ~1e6.
     model = prothero_robinson(-1e6)
@@ -227,7 +233,8 @@ def axis_solution(axis, dt, ticks):
 
 def test_rk4_diverges_on_the_axis_at_1_ms(axis):
     # The electrical pole at about -R/L = -3000/s times 1 ms lies beyond RK4's real stability
-    # limit -2.785 (REFERENCES.md, Lambert 1991 [mem]).
+    # limit -2.785 (Lambert, Numerical Methods for Ordinary Differential Systems, 1991, section
+    # 5.12 [mem]).
     eig = np.linalg.eigvals(reference.jacobian_function(axis)(0.0, np.zeros(3), [0.0]))
     assert np.min(eig.real) * AXIS_TICK < -2.785
     built = build(generate(axis, builtin("rk4"), AXIS_TICK, precision="float"), axis)
@@ -303,7 +310,8 @@ def test_one_step_on_a_linear_model_matches_cont2discrete(method_id, c2d, precis
     x0, x1 = one_step(model, method_id, dt, precision, force)
     # Outside reference: scipy.signal.cont2discrete; 'zoh' is the exact discretization, and
     # 'backward_diff' and 'bilinear' equal one backward Euler and one trapezoidal (or implicit
-    # midpoint) step on x' = Ax + Bu (REFERENCES.md, "Linear models").
+    # midpoint) step on x' = Ax + Bu: they are the generalized bilinear transform with alpha = 1 and
+    # alpha = 1/2 (scipy.signal.cont2discrete documentation, from memory; measured here to ~1e-16).
     ad, bd, *_ = cont2discrete((a, b, np.eye(2), np.zeros((2, 1))), dt, method=c2d)
     expected = ad @ x0 + bd[:, 0] * force
     # To rounding: a few units of the precision's roundoff on |x| ~ 1.
@@ -368,7 +376,7 @@ def test_newton_without_a_solution_returns_no_convergence_and_keeps_the_state(pr
     ctx = built.ffi.new("quad_ctx_t *")
     built.lib.quad_reset(ctx)
     before = fields(model, ctx)
-    assert built.lib.quad_advance(ctx) == status_of(model, "NO_CONVERGENCE")
+    assert built.lib.quad_advance(ctx) == status_of(built, model, "NO_CONVERGENCE")
     assert fields(model, ctx) == before
     # The reference finds no solution either.
     assert reference.run(model, builtin("backward-euler"), 1.0, 1, np.zeros((1, 0))).completed == 0
@@ -382,7 +390,7 @@ def test_an_iteration_limit_of_one_with_a_strict_tolerance_fails_cleanly(axis):
     built.lib.axis_reset(ctx)
     ctx.V = AXIS_VOLTAGE
     before = fields(axis, ctx)
-    assert built.lib.axis_advance(ctx) == status_of(axis, "NO_CONVERGENCE")
+    assert built.lib.axis_advance(ctx) == status_of(built, axis, "NO_CONVERGENCE")
     assert fields(axis, ctx) == before
 
 
@@ -406,7 +414,7 @@ def test_a_zero_pivot_returns_singular_and_keeps_the_state(method_id, solver):
     # 1/g rounds in double; g * (1/g) is then 1 to within one unit, so the pivot is 0 or a few
     # units of roundoff: exactly zero for these g (checked here, so the test cannot pass vacuously).
     assert 1.0 - g * (1.0 / g) == 0.0
-    assert built.lib.lin_advance(ctx) == status_of(model, "SINGULAR")
+    assert built.lib.lin_advance(ctx) == status_of(built, model, "SINGULAR")
     assert fields(model, ctx) == before
 
 
@@ -416,7 +424,7 @@ def test_a_non_finite_input_returns_nonfinite_and_keeps_the_state(heater):
     built.lib.heater_reset(ctx)
     ctx.duty = float("inf")
     before = fields(heater, ctx)
-    assert built.lib.heater_advance(ctx) == status_of(heater, "NONFINITE")
+    assert built.lib.heater_advance(ctx) == status_of(built, heater, "NONFINITE")
     assert fields(heater, ctx) == before
 
 

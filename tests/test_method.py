@@ -9,6 +9,7 @@ import sympy as sp
 from codegen.errors import MethodError
 from codegen.methods import (BUILTIN_TABLEAUX, EXPLICIT, Tableau, builtin, builtin_ids, exact,
                              load_tableau)
+from codegen.methods.data import CITATIONS
 
 EXPLICIT_IDS = ["euler", "midpoint", "heun", "ralston2", "kutta3", "ssprk3", "rk4", "rk4-38",
                 "bs3", "dp5"]
@@ -37,7 +38,8 @@ def test_row_sums_equal_c_and_weights_sum_to_one(method_id):
 
 
 def test_dp5_matches_scipy_rk45_exactly():
-    # Dormand & Prince 1980: scipy's RK45 carries the same A, B, C (REFERENCES.md).
+    # Dormand & Prince 1980, J. Comput. Appl. Math. 6, which scipy's RK45 cites and whose A, B, C it
+    # carries.
     from scipy.integrate._ivp.rk import RK45
 
     a, b, c = builtin("dp5").floats()
@@ -47,7 +49,7 @@ def test_dp5_matches_scipy_rk45_exactly():
 
 
 def test_bs3_matches_scipy_rk23_exactly():
-    # Bogacki & Shampine 1989 equals scipy's RK23 (REFERENCES.md).
+    # Bogacki & Shampine 1989, Appl. Math. Lett. 2 (from memory), which scipy's RK23 cites.
     from scipy.integrate._ivp.rk import RK23
 
     a, b, c = builtin("bs3").floats()
@@ -57,7 +59,8 @@ def test_bs3_matches_scipy_rk23_exactly():
 
 
 def test_rk4_one_step_is_the_taylor_polynomial_on_linear_problems():
-    # REFERENCES.md: one RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial.
+    # One RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial (its stability
+    # function; Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., section IV.2, from memory).
     from codegen.reference.steppers import explicit_step
 
     A = np.array([[-2.0, 1.0], [0.5, -3.0]])
@@ -118,7 +121,24 @@ def test_unknown_method_suggests_a_near_name():
         builtin("rk44")
 
 
+def _plain(value) -> bool:
+    if isinstance(value, list):
+        return all(_plain(v) for v in value)
+    return type(value) in (str, int, float)
+
+
 def test_built_in_data_is_plain_data():
-    # Adding a method is adding data: every entry is a dict of strings and numbers.
-    for entry in BUILTIN_TABLEAUX.values():
-        assert isinstance(entry, dict) and {"name", "a", "b", "c", "source"} <= set(entry)
+    # Adding a method is adding data: every entry is a dict of strings, numbers and lists of them.
+    assert sorted(BUILTIN_TABLEAUX) == sorted(TABLEAU_IDS)
+    for method_id, entry in BUILTIN_TABLEAUX.items():
+        assert {"name", "a", "b", "c", "source"} <= set(entry), method_id
+        assert all(_plain(v) for v in entry.values()), method_id
+
+
+@pytest.mark.parametrize("method_id", builtin_ids())
+def test_every_built_in_names_its_source_in_full(method_id):
+    # `tickwright methods` prints this text: a full citation (authors, title, year), never an
+    # abbreviation or a note meant for developers.
+    source = builtin(method_id).source
+    assert source.startswith((*CITATIONS.values(), "common practice, no source")), source
+    assert "memory" not in source and "[mem]" not in source

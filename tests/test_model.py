@@ -2,13 +2,18 @@
 
 from __future__ import annotations
 
+import hashlib
+
 import sympy as sp
 import pytest
 from click.testing import CliRunner
 
+from codegen.build import build
 from codegen.cli import main
 from codegen.errors import ModelError
-from codegen.model import Input, Output, Parameter, State, define, load_model
+from codegen.methods import builtin
+from codegen.model import Input, Model, Output, Parameter, State, define, load_model
+from codegen.pipeline import generate
 
 GOOD = """
 name = "heater"
@@ -142,7 +147,10 @@ def test_missing_file_is_one_line(tmp_path):
     result = CliRunner().invoke(main, ["emit", str(tmp_path / "nope.toml"), "--method", "rk4",
                                        "--dt", "0.1", "--out", str(tmp_path / "o")])
     assert result.exit_code == 1
-    assert "file not found" in result.output
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert len(lines) == 1 and "file not found" in lines[0], result.output
+    assert str(tmp_path / "nope.toml") in lines[0] and "Traceback" not in result.output
+    assert not (tmp_path / "o").exists()
 
 
 def test_python_api_validates_too():
@@ -151,3 +159,39 @@ def test_python_api_validates_too():
         define("m", states=[State("x", rate=sp.Symbol("y", real=True) * x)])
     with pytest.raises(ModelError, match="duplicate name 'x'"):
         define("m", states=[State("x", rate=-x)], parameters=[Parameter("x", value=1.0)])
+
+
+def test_a_model_built_directly_has_resolved_outputs_and_the_c_computes_them():
+    # Regression: a Model constructed directly (not through define or a model file) kept its
+    # outputs unresolved, and the generated C silently wrote y = 0.
+    x, k, y = sp.symbols("x k y", real=True)
+    model = Model(name="direct", states=(State(name="x", initial=1.5, rate=-x),),
+                  parameters=(Parameter(name="k", value=3.0),),
+                  outputs=(Output(name="y", expr=k * x + 1), Output(name="z", expr=2 * y)))
+    resolved = {o.name: o.resolved for o in model.outputs}
+    assert sp.simplify(resolved["y"] - (k * x + 1)) == 0
+    assert sp.simplify(resolved["z"] - 2 * (k * x + 1)) == 0
+    built = build(generate(model, builtin("rk4"), 0.1, precision="double"), model)
+    ctx, out = built.ffi.new("direct_ctx_t *"), built.ffi.new("direct_outputs_t *")
+    built.lib.direct_reset(ctx)
+    for _ in range(3):
+        built.lib.direct_outputs(ctx, out)
+        # y = k x + 1 and z = 2 y with k = 3, evaluated here on the C's own state.
+        assert out.y == pytest.approx(3.0 * ctx.x + 1.0, rel=1e-15)
+        assert out.z == pytest.approx(2.0 * (3.0 * ctx.x + 1.0), rel=1e-15)
+        assert built.lib.direct_advance(ctx) == built.lib.DIRECT_OK
+    assert ctx.x < 1.5  # the state moved, so the outputs were checked at different points
+
+
+def test_a_model_file_records_the_sha256_of_its_bytes(write_model):
+    path = write_model(GOOD)
+    assert load_model(path).digest == hashlib.sha256(path.read_bytes()).hexdigest()
+    # The digest is of the bytes, not of the meaning: CRLF line ends give the same model and a
+    # different digest, again the file's own.
+    crlf = write_model(GOOD.replace("\n", "\r\n"), name="crlf.toml")
+    model = load_model(crlf)
+    assert model.digest == hashlib.sha256(crlf.read_bytes()).hexdigest()
+    assert model.digest != load_model(path).digest and model.f == load_model(path).f
+    # A model built in Python has no file, hence no digest.
+    x = sp.Symbol("x", real=True)
+    assert define("m", states=[State("x", rate=-x)]).digest == ""

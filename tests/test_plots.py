@@ -8,8 +8,8 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 
-pytest.importorskip("matplotlib")
-
+# matplotlib is a test dependency (pyproject's "test" extra): a missing one fails, it never skips.
+import matplotlib.figure  # noqa: E402
 import matplotlib.image  # noqa: E402
 
 from codegen.report import plots  # noqa: E402
@@ -31,7 +31,8 @@ def pixel(image, ax_box, xlim, ylim, z):
 
 
 def test_euler_region_is_the_disk_around_minus_one(tmp_path, monkeypatch):
-    # Forward Euler's region is |1 + z| <= 1 (HNW I IV.2 [mem]; REFERENCES.md):
+    # Forward Euler's region is |1 + z| <= 1 (Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed.,
+    # section IV.2, from memory):
     # z = -0.8 + 0.45i is shaded, -2.6 + 0.45i and 0.35 + 0.45i are not.
     seen = {}
     import matplotlib.figure
@@ -70,13 +71,31 @@ def test_unknown_picture_format_is_one_clear_error(tmp_path):
         plots.stability_region(builtin("euler"), np.array([-1.0]), tmp_path / "x.bmp")
 
 
-def test_convergence_plot_from_an_order_study(tmp_path):
-    # Errors of an order-4 method: e = C h^4 exactly, so the fitted slope drawn is 4.
+def test_convergence_plot_from_an_order_study(tmp_path, monkeypatch):
+    # Errors of an order-4 method, e = C h^4 exactly with h = 1 s / n. The study reports a fitted
+    # order of 3.9: the picture must draw the errors at their steps, a fit of slope 3.9 and the
+    # expected order's line of slope 4 (log-log).
     steps = (8, 16, 32)
     errors = tuple(1e-2 * (1 / n) ** 4 for n in steps)
-    study = OrderStudy(4, 1.0, steps, errors, errors, 4.0, True)
+    study = OrderStudy(4, 1.0, steps, errors, errors, 3.9, True)
+    seen = {}
+    save = matplotlib.figure.Figure.savefig
+
+    def spy(fig, path, **kw):
+        seen.update({line.get_label(): line.get_xydata() for line in fig.axes[0].get_lines()})
+        return save(fig, path, **kw)
+
+    monkeypatch.setattr(matplotlib.figure.Figure, "savefig", spy)
     path = plots.convergence(study, tmp_path / "conv.png")
     assert matplotlib.image.imread(path).shape[0] > 100
+    np.testing.assert_allclose(seen["C build (double) vs solve_ivp"],
+                               np.column_stack([1.0 / np.array(steps), errors]), rtol=1e-12)
+
+    def slopes(xy):
+        return np.diff(np.log(xy[:, 1])) / np.diff(np.log(xy[:, 0]))
+
+    np.testing.assert_allclose(slopes(seen["fitted slope 3.90"]), 3.9, rtol=1e-9)
+    np.testing.assert_allclose(slopes(seen["order 4"]), 4.0, rtol=1e-9)
 
 
 def test_check_and_advise_write_their_pictures(tmp_path):
