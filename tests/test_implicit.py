@@ -22,7 +22,6 @@ from codegen import reference
 from codegen.build import build, strict_compile
 from codegen.methods import with_order
 from codegen.errors import MethodError, ModelError
-from codegen.emit import STATUS_CODES
 from codegen.discretize import DENSE_LU, ELIMINATION, INVERSE, discretize_implicit, jacobian
 from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_tableau)
 from codegen.model import Input, Parameter, State, define
