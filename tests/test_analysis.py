@@ -1,6 +1,6 @@
 """Order conditions and linear stability (codegen.analysis) against published values.
 
-Sources, abbreviated as in the shared REFERENCES.md:
+Sources, abbreviated:
 HNW = Hairer, Norsett & Wanner, Solving ODEs I, 2nd ed., 1993; HW = Hairer & Wanner, Solving ODEs II,
 2nd ed., 1996. "[mem]" marks a value recalled from that source, not read from the page.
 """
@@ -43,9 +43,9 @@ GAUSS3 = dict(
 
 def test_condition_counts_per_order_and_cumulative():
     counts = analysis.condition_counts(8)
-    # OEIS A000081, citing Butcher 1987 (REFERENCES.md).
+    # OEIS A000081, citing Butcher, The Numerical Analysis of ODEs, 1987.
     assert counts == [1, 1, 2, 4, 9, 20, 48, 115]
-    # OEIS A087803, "number of order conditions", citing Butcher 1987 (REFERENCES.md).
+    # OEIS A087803, "number of order conditions", citing Butcher 1987.
     assert list(np.cumsum(counts)) == [1, 2, 4, 8, 17, 37, 85, 200]
 
 
@@ -89,9 +89,8 @@ def test_elementary_weights_of_rk4_for_third_order_trees():
 # Orders
 # ---------------------------------------------------------------------------------------------
 
-# Orders and embedded orders of the built-in explicit methods: REFERENCES.md table "Tableaux and their
-# orders" (HNW I II.1 and Tables 1.1-1.2 [mem]; Ralston 1962 [mem]; Shu & Osher 1988 [mem];
-# Bogacki & Shampine 1989 [mem]; Dormand & Prince 1980).
+# Orders and embedded orders of the built-in explicit methods (HNW I II.1 and Tables 1.1-1.2 [mem];
+# Ralston 1962 [mem]; Shu & Osher 1988 [mem]; Bogacki & Shampine 1989 [mem]; Dormand & Prince 1980).
 EXPLICIT_ORDERS = {"euler": 1, "midpoint": 2, "heun": 2, "ralston2": 2, "kutta3": 3, "ssprk3": 3,
                    "rk4": 4, "rk4-38": 4, "bs3": 3, "dp5": 5}
 EMBEDDED_ORDERS = {"bs3": 2, "dp5": 4}
@@ -117,7 +116,7 @@ def test_order_of_builtin_explicit_methods(method_id):
         assert analysis.order_of(tableau, tableau.b_hat) == EMBEDDED_ORDERS[method_id]
 
 
-# Orders of the implicit set: REFERENCES.md (HW IV.5 [mem]; Alexander 1977 [mem]).
+# Orders of the implicit set (HW IV.5 [mem]; Alexander 1977, SIAM J. Numer. Anal. 14 [mem]).
 IMPLICIT_ORDERS = {"backward-euler": 1, "trapezoidal": 2, "implicit-midpoint": 2, "gauss2": 4,
                    "radau-iia2": 3, "radau-iia3": 5, "lobatto-iiic2": 2, "sdirk2": 2, "sdirk3": 3}
 
@@ -140,7 +139,7 @@ def test_gauss3_is_order_six_exactly():
 
 def test_sdirk3_gamma_is_the_published_root():
     gamma = exact(SDIRK3_GAMMA)
-    # Root of x^3 - 3x^2 + 3/2 x - 1/6 near 0.435866521508459 (Alexander 1977 [mem], REFERENCES.md).
+    # Root of x^3 - 3x^2 + 3/2 x - 1/6 near 0.435866521508459 (Alexander 1977 [mem]).
     assert abs(float(gamma) - 0.435866521508459) < 1e-15
     with mpmath.workdps(60):
         root = mpmath.findroot(lambda x: x ** 3 - 3 * x ** 2 + mpmath.mpf(3) / 2 * x - mpmath.mpf(1) / 6,
@@ -201,13 +200,13 @@ def taylor_exp(p):
                                        "rk4", "rk4-38", "bs3"])
 def test_explicit_stability_function_is_taylor_polynomial(method_id):
     # For explicit methods with p = s <= 4 (and BS3, whose fourth stage is FSAL-only with b4 = 0),
-    # R is the degree-p Taylor polynomial of e^z (REFERENCES.md; HNW I IV.2 [mem]).
+    # R is the degree-p Taylor polynomial of e^z (HNW I IV.2 [mem]).
     tableau = builtin(method_id)
     assert sp.expand(analysis.stability_function(tableau) - taylor_exp(EXPLICIT_ORDERS[method_id])) == 0
 
 
 def test_dp5_stability_function():
-    # R = T5 + z^6/600 for Dormand-Prince 5 (REFERENCES.md; HNW I IV.2 [mem]).
+    # R = T5 + z^6/600 for Dormand-Prince 5 (HNW I IV.2 [mem]).
     r = analysis.stability_function(builtin("dp5"))
     assert sp.expand(r - taylor_exp(5) - Z ** 6 / 600) == 0
 
@@ -259,8 +258,8 @@ def test_stability_function_is_in_lowest_terms():
 # Stability limits and flags
 # ---------------------------------------------------------------------------------------------
 
-# (real-axis limit, imaginary-axis limit): REFERENCES.md, from Lambert 1991 section 5.12 [mem] and
-# HNW I IV.2 [mem]; sqrt(3) and 2 sqrt(2) exact.
+# (real-axis limit, imaginary-axis limit): Lambert 1991, Numerical Methods for Ordinary
+# Differential Systems, section 5.12 [mem] and HNW I IV.2 [mem]; sqrt(3) and 2 sqrt(2) exact.
 AXIS_LIMITS = {
     "euler": (-2.0, 0.0), "midpoint": (-2.0, 0.0), "heun": (-2.0, 0.0), "ralston2": (-2.0, 0.0),
     "kutta3": (-2.512745327, math.sqrt(3)), "ssprk3": (-2.512745327, math.sqrt(3)),
@@ -276,7 +275,7 @@ def test_axis_limits_of_explicit_methods(method_id):
     real, imag = AXIS_LIMITS[method_id]
     assert abs(report.real_axis_limit - real) < 1e-6
     assert abs(report.imag_axis_limit - imag) < 1e-6
-    # Explicit methods are never A-stable and R is unbounded at infinity (REFERENCES.md).
+    # Explicit methods are never A-stable and R is unbounded at infinity (HW IV.3 [mem]).
     assert not report.a_stable and not report.l_stable and report.r_infinity is None
     assert report.kind == "explicit"
 
@@ -289,7 +288,7 @@ def test_real_axis_limit_of_rk3_is_the_real_root_of_t3_plus_one():
     assert abs(analysis.analyse(builtin("kutta3")).real_axis_limit - real.max()) < 1e-12
 
 
-# A-stable, R(infinity), L-stable: REFERENCES.md (HW IV.3-IV.6 [mem]).
+# A-stable, R(infinity), L-stable (HW IV.3-IV.6 [mem]).
 IMPLICIT_FLAGS = {
     "backward-euler": (True, 0, True),
     "trapezoidal": (True, -1, False), "implicit-midpoint": (True, -1, False),
@@ -336,9 +335,9 @@ def test_pole_in_left_half_plane_is_not_a_stable():
 
 
 def test_ros2_and_rosenbrock_euler():
-    # Rosenbrock-Euler: R = 1/(1 - z) (HW IV.7 [mem]); A- and L-stable (REFERENCES.md).
+    # Rosenbrock-Euler: R = 1/(1 - z) (HW IV.7 [mem]); A- and L-stable (HW IV.7 [mem]).
     assert sp.simplify(analysis.rosenbrock_stability_function(builtin("rosenbrock-euler")) - 1 / (1 - Z)) == 0
-    # ROS2, gamma = 1 + 1/sqrt(2): A- and L-stable, R(inf) = 0 (REFERENCES.md; Verwer et al. 1999).
+    # ROS2, gamma = 1 + 1/sqrt(2): A- and L-stable, R(inf) = 0 (Verwer et al. 1999).
     for method_id in ("rosenbrock-euler", "ros2"):
         report = analysis.rosenbrock_stability_report(builtin(method_id))
         assert report.a_stable and report.l_stable and report.r_infinity == 0
@@ -365,7 +364,8 @@ def test_exact_propagator_report():
 
 
 def test_in_stability_region_near_the_rk4_limits():
-    # Limits from REFERENCES.md: -2.785293563 and 2 sqrt(2) for any 4-stage order-4 method.
+    # -2.785293563 and 2 sqrt(2) for any 4-stage order-4 method (Lambert 1991, 5.12; HNW I IV.2
+    # [mem]).
     z = np.array([-2.7852, -2.7854, 2.8284j, 2.8285j, 0, -1 - 1j, 1 + 0j])
     got = analysis.in_stability_region(builtin("rk4"), z)
     assert list(got) == [True, False, True, False, True, True, False]
@@ -380,7 +380,7 @@ def test_in_stability_region_near_the_rk4_limits():
 
 def test_max_stable_dt_on_the_negative_axis():
     # |1 + h lambda| <= 1 gives h <= 2/1000 for Euler (common practice, no source); RK4 and DP5:
-    # real-axis limits of REFERENCES.md divided by 1000.
+    # real-axis limits (Lambert 1991, 5.12 [mem]) divided by 1000.
     assert abs(analysis.max_stable_dt(builtin("euler"), [-1000.0]) - 0.002) < 0.002 * 1e-9
     assert abs(analysis.max_stable_dt(builtin("rk4"), [-1000.0]) - 2.785293563e-3) < 2.79e-3 * 1e-6
     assert abs(analysis.max_stable_dt(builtin("dp5"), [-1000.0]) - 3.306567893e-3) < 3.31e-3 * 1e-6
@@ -400,7 +400,7 @@ def first_unstable_step(r_numeric, lam, h_max, samples=200_000):
 
 
 def test_max_stable_dt_for_a_lightly_damped_pair_matches_bisection():
-    # R of RK4 is the Taylor polynomial T4 (REFERENCES.md), evaluated here independently of the tableau.
+    # R of RK4 is the Taylor polynomial T4 (HNW I IV.2 [mem]), evaluated apart from the tableau.
     def r4(z):
         return 1 + z + z ** 2 / 2 + z ** 3 / 6 + z ** 4 / 24
 
@@ -408,22 +408,22 @@ def test_max_stable_dt_for_a_lightly_damped_pair_matches_bisection():
     want = first_unstable_step(r4, lam, 0.05)
     got = analysis.max_stable_dt(builtin("rk4"), [lam, np.conj(lam)])
     assert abs(got - want) < 0.01 * want
-    # Close to the imaginary-axis limit 2 sqrt(2)/|lambda| (REFERENCES.md), slightly beyond it.
+    # Close to the imaginary-axis limit 2 sqrt(2)/|lambda| (HNW I IV.2 [mem]), slightly beyond it.
     assert 2 * math.sqrt(2) / abs(lam) < got < 1.05 * 2 * math.sqrt(2) / abs(lam)
 
 
 def test_max_stable_dt_takes_the_most_restrictive_eigenvalue():
     eigenvalues = [0.0, -10.0, -1000.0, -3 + 4j, -3 - 4j]
     got = analysis.max_stable_dt(builtin("rk4"), eigenvalues, margin=0.5)
-    # REFERENCES.md real-axis limit of RK4, divided by 1000, halved by the margin.
+    # Real-axis limit of RK4 (Lambert 1991, 5.12 [mem]), divided by 1000, halved by the margin.
     assert abs(got - 0.5 * 2.785293563e-3) < 1e-9
 
 
 def test_max_stable_dt_on_the_imaginary_axis():
-    # Euler and RK2: only the origin of the imaginary axis is stable (REFERENCES.md: limit 0).
+    # Euler and RK2: only the origin of the imaginary axis is stable (HNW I IV.2 [mem]: limit 0).
     assert analysis.max_stable_dt(builtin("euler"), [100j]) == 0.0
     assert analysis.max_stable_dt(builtin("heun"), [100j]) == 0.0
-    # RK4: 2 sqrt(2)/100 (REFERENCES.md); DP5: 0.997189/100 (REFERENCES.md, digits as given).
+    # RK4: 2 sqrt(2)/100; DP5: 0.997189/100, digits as recalled (HNW I IV.2 [mem]).
     assert abs(analysis.max_stable_dt(builtin("rk4"), [100j]) - 2 * math.sqrt(2) / 100) < 1e-12
     assert abs(analysis.max_stable_dt(builtin("dp5"), [100j]) - 0.00997189) < 1e-8
     # Trapezoidal has |R(iy)| = 1 everywhere (HW IV.3 [mem]): touching is not leaving, unbounded.
@@ -472,3 +472,52 @@ def test_max_stable_dt_takes_every_method_kind():
     assert analysis.max_stable_dt(builtin("zoh-exact"), [-1e6]) == math.inf
     assert analysis.max_stable_dt(builtin("zoh-exact"), [0.5]) == 0.0
     assert analysis.stability_coefficients(builtin("zoh-exact")) is None
+
+
+def test_ray_directions_keep_the_largest_eigenvalue_of_each_direction():
+    # On a ray the limit is t*/|lambda| (t* fixed by the direction): only the largest |lambda| of
+    # a direction binds; conjugates share a direction, zero has none.
+    values = [-1.0, -1000.0, -3 + 4j, -6 - 8j, -0.3 + 0.4j, 0.0, 2j, -5j]
+    got = analysis.ray_directions(values)
+    assert sorted(got, key=lambda v: (v.real, v.imag)) == [-1000.0, -6 + 8j, 5j]
+
+
+def envelope_eigenvalues():
+    """A lightly to well damped pair swept over its natural frequency, plus real modes: many
+    directions, same-direction repeats, conjugates, a zero (common practice, no source:
+    lambda = -zeta w +- i w sqrt(1 - zeta^2))."""
+    values = [0.0, -5.0, -40.0]
+    for w in (20.0, 35.0, 50.0):
+        for zeta in (0.05, 0.2, 0.7):
+            pole = complex(-zeta * w, w * math.sqrt(1 - zeta ** 2))
+            values += [pole, pole.conjugate()]
+    return np.array(values)
+
+
+@pytest.mark.parametrize("method_id, r_numeric", [
+    ("euler", lambda z: 1 + z),
+    ("kutta3", lambda z: 1 + z + z ** 2 / 2 + z ** 3 / 6),
+    ("rk4", lambda z: 1 + z + z ** 2 / 2 + z ** 3 / 6 + z ** 4 / 24),
+])
+def test_max_stable_dt_over_an_envelope_is_the_smallest_single_limit(method_id, r_numeric):
+    # The envelope use (many eigenvalues at once, reduced to one per direction) must give the
+    # smallest of the limits found one eigenvalue at a time by an independent scan of |R| (R the
+    # Taylor polynomial, HNW I IV.2 [mem]).
+    values = envelope_eigenvalues()
+    got = analysis.max_stable_dt(builtin(method_id), values)
+    singles = [first_unstable_step(r_numeric, lam, 10.0 / abs(lam), samples=20_000)
+               for lam in values if lam != 0]
+    assert abs(got - min(singles)) < 1e-3 * min(singles)
+    # ...and the exact use, one eigenvalue at a time, agrees with each scan.
+    for lam, want in zip([v for v in values if v != 0][:4], singles[:4]):
+        assert abs(analysis.max_stable_dt(builtin(method_id), [lam]) - want) < 1e-3 * want
+
+
+def test_max_stable_dt_of_an_a_stable_method_over_an_envelope_is_unbounded_or_zero():
+    values = envelope_eigenvalues()
+    # Rosenbrock-Euler R = 1/(1 - z) and SDIRK2 are A-stable (HW IV.3, IV.7 [mem]).
+    for method in (builtin("rosenbrock-euler"), implicit("sdirk2"), builtin("zoh-exact")):
+        assert analysis.max_stable_dt(method, values) == math.inf
+        # A growing mode leaves the region at once (|R(h lambda)| > 1 for small h > 0).
+        assert analysis.max_stable_dt(method, np.append(values, 0.5 + 3j)) == 0.0
+

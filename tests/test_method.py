@@ -2,10 +2,15 @@
 
 from __future__ import annotations
 
+import json
+import math
+
 import numpy as np
 import pytest
 import sympy as sp
+from click.testing import CliRunner
 
+from codegen.cli import main
 from codegen.errors import MethodError
 from codegen.methods import (BUILTIN_TABLEAUX, EXPLICIT, Tableau, builtin, builtin_ids, exact,
                              load_tableau)
@@ -37,7 +42,7 @@ def test_row_sums_equal_c_and_weights_sum_to_one(method_id):
 
 
 def test_dp5_matches_scipy_rk45_exactly():
-    # Dormand & Prince 1980: scipy's RK45 carries the same A, B, C (REFERENCES.md).
+    # Dormand & Prince 1980: scipy's RK45 carries the same A, B, C and cites that paper.
     from scipy.integrate._ivp.rk import RK45
 
     a, b, c = builtin("dp5").floats()
@@ -47,7 +52,7 @@ def test_dp5_matches_scipy_rk45_exactly():
 
 
 def test_bs3_matches_scipy_rk23_exactly():
-    # Bogacki & Shampine 1989 equals scipy's RK23 (REFERENCES.md).
+    # Bogacki & Shampine 1989 (from memory) equals scipy's RK23, which cites that paper.
     from scipy.integrate._ivp.rk import RK23
 
     a, b, c = builtin("bs3").floats()
@@ -57,14 +62,15 @@ def test_bs3_matches_scipy_rk23_exactly():
 
 
 def test_rk4_one_step_is_the_taylor_polynomial_on_linear_problems():
-    # REFERENCES.md: one RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial.
+    # One RK4 step on x' = Ax equals R4(hA) x, R4 the degree-4 Taylor polynomial (HNW I, section
+    # IV.2, from memory).
     from codegen.reference.steppers import explicit_step
 
     A = np.array([[-2.0, 1.0], [0.5, -3.0]])
     x0 = np.array([1.0, -0.5])
     h = 0.1
     a, b, c = builtin("rk4").floats()
-    x1 = explicit_step(lambda t, x, u: A @ x, a, b, c, 0.0, x0, None, h)
+    x1 = explicit_step(lambda t, x, u: A @ x, a, b, c, 0.0, x0, None, h).x
     hA = h * A
     R4 = np.eye(2) + hA + hA @ hA / 2 + hA @ hA @ hA / 6 + hA @ hA @ hA @ hA / 24
     np.testing.assert_allclose(x1, R4 @ x0, rtol=1e-15, atol=1e-15)
@@ -122,3 +128,48 @@ def test_built_in_data_is_plain_data():
     # Adding a method is adding data: every entry is a dict of strings and numbers.
     for entry in BUILTIN_TABLEAUX.values():
         assert isinstance(entry, dict) and {"name", "a", "b", "c", "source"} <= set(entry)
+
+
+# ---------------------------------------------------------------------------------------------
+# The methods table: every kind
+# ---------------------------------------------------------------------------------------------
+
+def test_methods_json_is_complete_for_every_kind():
+    result = CliRunner().invoke(main, ["methods", "--json"])
+    assert result.exit_code == 0, result.output
+    rows = {r["id"]: r for r in json.loads(result.stdout)}
+    assert set(rows) == set(builtin_ids())
+    keys = {"name", "stages", "order", "embedded_order", "kind", "a_stable", "l_stable",
+            "real_axis_limit", "imag_axis_limit", "source"}
+    assert all(keys <= set(r) for r in rows.values())
+    # Real-axis limits (Lambert 1991, Numerical Methods for Ordinary Differential Systems,
+    # section 5.12, and HNW I IV.2 [mem]) and embedded orders (Bogacki & Shampine 1989, Dormand &
+    # Prince 1980 [mem]).
+    assert math.isclose(rows["rk4"]["real_axis_limit"], -2.785293563, rel_tol=1e-9)
+    assert math.isclose(rows["dp5"]["imag_axis_limit"], 0.997189, rel_tol=1e-5)
+    assert (rows["bs3"]["order"], rows["bs3"]["embedded_order"]) == (3, 2)
+    assert rows["euler"]["a_stable"] is False
+    # A- and L-stability (HW IV.3-IV.6 [mem]; ROS2: Verwer et al. 1999); SDIRK3's data are
+    # rounded, its order 3 needs the rounded-data tolerance.
+    expected = {"backward-euler": (True, True, 1), "trapezoidal": (True, False, 2),
+                "gauss2": (True, False, 4), "radau-iia3": (True, True, 5),
+                "sdirk3": (True, True, 3), "ros2": (True, True, 2)}
+    for method_id, (a, l, p) in expected.items():
+        r = rows[method_id]
+        assert (r["a_stable"], r["l_stable"], r["order"]) == (a, l, p), method_id
+        assert r["real_axis_limit"] is None
+    exact_rows = [r for r in rows.values() if r["kind"] == "exact"]
+    assert exact_rows and all(r["order"] is None and r["a_stable"] for r in exact_rows)
+
+
+def test_methods_analyses_a_user_tableau(tmp_path):
+    path = tmp_path / "ralston3.toml"
+    # Ralston's 3rd-order method (Ralston 1962, Math. Comp. 16 [mem]); any 3-stage order-3 explicit
+    # method has the real-axis limit -2.512745327 (Lambert 1991, section 5.12 [mem]).
+    path.write_text('name = "Ralston 3"\nc = [0, "1/2", "3/4"]\nb = ["2/9", "1/3", "4/9"]\n'
+                    'a = [[0, 0, 0], ["1/2", 0, 0], [0, "3/4", 0]]\n', encoding="utf-8")
+    result = CliRunner().invoke(main, ["methods", "--tableau", str(path), "--json"])
+    assert result.exit_code == 0, result.output
+    (row,) = json.loads(result.stdout)
+    assert row["order"] == 3 and row["kind"] == "explicit"
+    assert math.isclose(row["real_axis_limit"], -2.512745327, rel_tol=1e-9)

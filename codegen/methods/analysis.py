@@ -756,37 +756,56 @@ def ray_limit(coefficients: tuple[tuple, tuple], lam: complex) -> float | None:
     return None if h is None else float(h)
 
 
+def ray_directions(eigenvalues) -> np.ndarray:
+    """One eigenvalue per ray direction, the largest: along a ray only the largest |lambda| binds.
+
+    The limit on a ray is t*/|lambda| with t* fixed by the direction, so the largest |lambda| of
+    a direction gives the smallest h. Conjugates share a direction (R has real coefficients);
+    directions are compared to 12 digits; zero eigenvalues have none (they never bind).
+    """
+    best: dict = {}
+    for v in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
+        r = abs(v)
+        if r == 0:
+            continue
+        key = (round(v.real / r, 12), round(abs(v.imag) / r, 12))
+        if key not in best or r > abs(best[key]):
+            best[key] = complex(v.real, abs(v.imag))
+    return np.array([best[k] for k in sorted(best)], dtype=complex)
+
+
 def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     """The largest h with h*lambda in the stability region for every eigenvalue, times margin.
 
     method: a Tableau, a linearly implicit method, or the exact discretization (always stable
-    for decaying modes). eigenvalues: complex values (1/s); the result is in seconds. For each
-    lambda != 0 the ray h*lambda, h >= 0, is followed outward from 0 to the first point where
-    |R| = 1 is crossed (ray_limit). margin in (0, 1] is a safety factor. Returns math.inf if
-    every ray stays stable, 0.0 if some h*lambda leaves the region at once (for example
-    Re lambda > 0, or an explicit method with lambda on the imaginary axis).
+    for decaying modes). eigenvalues: complex values (1/s), one or a whole envelope of them; the
+    result is in seconds. The eigenvalues are reduced to one per ray direction (ray_directions);
+    an A-stable method is unbounded when every Re lambda <= 0; otherwise each ray h*lambda,
+    h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed, exactly
+    (ray_limit). margin in (0, 1] is a safety factor. Returns math.inf if every ray stays stable,
+    0.0 if some h*lambda leaves the region at once (for example Re lambda > 0, or an explicit
+    method with lambda on the imaginary axis).
 
     References
     ----------
-    HW, section IV.2 (stability domain); common practice, no source (step size from eigenvalues).
+    HW, section IV.2 (stability domain), IV.3 (A-stability); common practice, no source (step
+    size from eigenvalues).
     """
     if not 0 < margin <= 1:
         raise ValueError("margin must be in (0, 1]")
+    values = np.atleast_1d(np.asarray(eigenvalues, dtype=complex))
+    bad = values[~np.isfinite(values)]
+    if bad.size:
+        raise ValueError(f"eigenvalue {bad[0]} is not finite")
+    directions = ray_directions(values)
     coefficients = stability_coefficients(method)
+    if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
+        return 0.0 if np.any(directions.real > 0) else math.inf
+    if directions.size == 0 or (np.all(directions.real <= 0) and analyse(method).a_stable):
+        return math.inf
     limit = math.inf
-    seen = set()
-    for lam in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
-        if not np.isfinite(lam):
-            raise ValueError(f"eigenvalue {lam} is not finite")
-        key = (float(lam.real), abs(float(lam.imag)))  # R has real coefficients: conjugates agree
-        if key == (0.0, 0.0) or key in seen:
-            continue
-        seen.add(key)
-        if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
-            if key[0] > 0:
-                return 0.0
-            continue
-        h = ray_limit(coefficients, complex(*key))
+    for lam in directions:
+        h = ray_limit(coefficients, lam)
         if h is not None:
             limit = min(limit, h)
     return limit * margin
