@@ -89,12 +89,12 @@ def generation_options(method, newton_iterations, newton_tol, linear_solve) -> d
 
 
 def resolve_method(method_id: str | None, tableau_file: Path | None):
-    from .methods import builtin, load_tableau
+    from .methods import builtin, load_method_file
 
     if method_id and tableau_file:
         raise click.UsageError("give either --method or --tableau, not both")
     if tableau_file:
-        return load_tableau(tableau_file)
+        return load_method_file(tableau_file)
     if not method_id:
         raise click.UsageError("missing --method NAME (or --tableau FILE); see 'tickwright methods'")
     return builtin(method_id)
@@ -144,7 +144,11 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 
 
 def _print_check(report, model, method, dt, substeps, passed: bool | None = None) -> None:
-    click.echo(f"{model.name}: {method.name} ({method.id}), dt = {dt:g} s, {substeps} substep(s)")
+    from .methods import tolerance_note
+
+    note = tolerance_note(method)
+    click.echo(f"{model.name}: {method.name} ({method.id}{'; ' + note if note else ''}), "
+               f"dt = {dt:g} s, {substeps} substep(s)")
     click.echo(f"  {'strict compile':<24} ok    {report.strict_compile}")
     for c in report.cross_checks:
         verdict = "ok" if c.passed else "FAIL"
@@ -456,10 +460,10 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
 
 def method_rows(tableau_file: Path | None):
     """One row per method (or the tableau file's): the analysis of every method kind."""
-    from .methods import builtin, builtin_ids, load_tableau
+    from .methods import builtin, builtin_ids, load_method_file, tolerance_note
     from .methods.analysis import analyse
 
-    methods = [load_tableau(tableau_file)] if tableau_file else \
+    methods = [load_method_file(tableau_file)] if tableau_file else \
         [builtin(i) for i in builtin_ids()]
     rows = []
     for m in methods:
@@ -474,6 +478,7 @@ def method_rows(tableau_file: Path | None):
             "real_axis_limit": report_value(report, "real_axis_limit"),
             "imag_axis_limit": report_value(report, "imag_axis_limit"),
             "stability_function": str(report.stability.function),
+            "order_note": tolerance_note(m) or None,
             "source": getattr(m, "source", "")})
     return rows
 
@@ -506,6 +511,9 @@ def methods(tableau_file, as_json):
         click.echo(f"{r['id']:<18} {r['stages']:>6} {order:>6}  {r['kind']:<20} "
                    f"{flag(r['a_stable'])} {flag(r['l_stable'])} {limit(r['real_axis_limit']):>10} "
                    f"{limit(r['imag_axis_limit']):>10}  {r['name']}; {r['source']}")
+    for r in rows:
+        if r["order_note"]:
+            click.echo(f"{r['id']}: order {r['order']} ({r['order_note']})")
     click.echo("A/L: A-stable, L-stable; axis limits: where |R(z)| <= 1 ends on the negative "
                "real and the imaginary axis (z = h*lambda).")
 

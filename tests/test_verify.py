@@ -214,3 +214,30 @@ def test_error_estimate_needs_an_embedded_pair():
                                   "--out", "unused", "--error-estimate"])
     assert result.exit_code == 1
     assert "b_hat" in result.output and result.output.strip().count("\n") == 0
+
+
+# A Rosenbrock method built for the tests in the form of a method file (see test_analysis.py,
+# ORDER3_ROSENBROCK): order 3, with stage times (0, 1/2, 1) that differ from the row sums of its
+# alpha (0, 1/2, -1).
+ORDER3_ROSENBROCK_TOML = """kind = "rosenbrock"
+name = "3 stages, order 3 (test)"
+order = 3
+gamma = "1/2"
+alpha = [[0, 0, 0], ["1/2", 0, 0], [-2, 1, 0]]
+coupling = [[0, 0, 0], [2, 0, 0], ["164/35", "-82/35", 0]]
+b = ["-103/108", "43/54", "35/108"]
+"""
+
+
+def test_a_rosenbrock_method_file_checks_at_its_order_on_a_time_dependent_model(tmp_path):
+    # x' = -x + x^2/4 + cos(2t) uses time, so the C needs the derived stage times and time
+    # weights to reach order 3 (with the row sums of alpha as stage times it is order 1).
+    from codegen.methods import load_method_file
+
+    path = tmp_path / "ros3.toml"
+    path.write_text(ORDER3_ROSENBROCK_TOML, encoding="utf-8")
+    x, t = sp.Symbol("x", real=True), sp.Symbol("t", real=True)
+    model = define("td", [State("x", initial=1.0, rate=-x + x ** 2 / 4 + sp.cos(2 * t))])
+    report = check(model, load_method_file(path), 0.05, precisions=("double",), ticks=50)
+    assert report.passed, report
+    assert abs(report.order.measured - 3) <= ORDER_TOLERANCE

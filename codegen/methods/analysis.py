@@ -1,9 +1,11 @@
-"""Properties of a Runge-Kutta method from its tableau: order (rooted trees) and linear stability.
+"""Properties of a method from its data: order (rooted trees for tableaux, the Rosenbrock
+conditions up to order 3) and linear stability.
 
-Tableau -> MethodReport. Everything that decides a yes/no question (is a condition satisfied, is
-the method A-stable, where does a stability interval end) is decided in exact arithmetic; floating
-point (mpmath at 50 digits) is only a fast filter in front of the exact test and the final rounding
-of a limit to a float.
+Method -> MethodReport. Everything that decides a yes/no question (is a condition satisfied, is
+the method A-stable, where does a stability interval end) is decided in exact arithmetic (order
+conditions of data given in decimals: to the method's tolerance); floating point (mpmath at 50
+digits) is only a fast filter in front of the exact test and the final rounding of a limit to a
+float.
 
 References
 ----------
@@ -26,7 +28,7 @@ import numpy as np
 import sympy as sp
 
 from ..errors import MethodError
-from .types import EXACT, LINEARLY_IMPLICIT, LinearlyImplicit, Tableau
+from .types import EXACT, LINEARLY_IMPLICIT, LinearlyImplicit, Tableau, unit_lower_inverse
 
 # The variable of the stability function, z = h * lambda.
 Z = sp.Symbol("z")
@@ -234,6 +236,80 @@ def order_of(tableau: Tableau, weights=None, max_order: int = 8) -> int:
                 if not _is_zero(value):
                     return p - 1
     return max_order
+
+
+def hairer_wanner_form(method: LinearlyImplicit, weights=None) -> tuple[list, list, list]:
+    """(Gamma, alpha, b) of a Rosenbrock method in the form of Hairer & Wanner, exact.
+
+    Our form (I - gamma h J) k_i = f(y + h sum_j alpha_ij k_j) + sum_j coupling_ij k_j,
+    y1 = y + h sum_i b_i k_i, is theirs, (I - gamma h J) K_i = h f(y + sum_j alpha_ij K_j)
+    + h J sum_{j<i} gamma_ij K_j, y1 = y + sum_i b_i K_i, with h k = Gamma K / gamma: their
+    Gamma = gamma (I - coupling)^-1 (diagonal gamma), their alpha = alpha (I - coupling)^-1 and
+    their b = b (I - coupling)^-1. weights replaces b (pass b_hat for the embedded solution).
+
+    References
+    ----------
+    HW, section IV.7, the transformation to the form with the matrix C (from memory).
+    """
+    s = method.stages
+    inv = unit_lower_inverse(method.coupling)
+    b = method.b if weights is None else tuple(weights)
+    times = lambda row: [sp.expand(sum((row[k] * inv[k][j] for k in range(s)), sp.Integer(0)))
+                         for j in range(s)]
+    gamma = [[sp.expand(method.gamma * v) for v in row] for row in inv]
+    return gamma, [times(row) for row in method.alpha], times(b)
+
+
+def rosenbrock_residuals(method: LinearlyImplicit, weights=None) -> list[tuple[int, sp.Expr]]:
+    """(order, residual) of each order condition of a Rosenbrock method up to order 3, exact.
+
+    With beta_jk = alpha_jk + gamma_jk below the diagonal, beta_j = sum_k beta_jk and
+    alpha_j = sum_k alpha_jk (Hairer & Wanner's coefficients, hairer_wanner_form):
+    order 1: sum b_j = 1; order 2: sum b_j beta_j = 1/2 - gamma; order 3: sum b_j alpha_j^2 = 1/3
+    and sum b_j beta_jk beta_k = 1/6 - gamma + gamma^2.
+
+    References
+    ----------
+    HW, section IV.7, Table 7.1 (from memory; tests/test_analysis.py measures the convergence
+    orders these conditions predict).
+    """
+    big_gamma, alpha, b = hairer_wanner_form(method, weights)
+    s, g = method.stages, method.gamma
+    beta = [[alpha[j][k] + big_gamma[j][k] for k in range(j)] for j in range(s)]
+    beta_sum = [sum(row, sp.Integer(0)) for row in beta]
+    alpha_sum = [sum(row, sp.Integer(0)) for row in alpha]
+    half, third, sixth = sp.Rational(1, 2), sp.Rational(1, 3), sp.Rational(1, 6)
+    return [
+        (1, sum(b, sp.Integer(0)) - 1),
+        (2, sum(b[j] * beta_sum[j] for j in range(s)) - (half - g)),
+        (3, sum(b[j] * alpha_sum[j] ** 2 for j in range(s)) - third),
+        (3, sum(b[j] * beta[j][k] * beta_sum[k] for j in range(s) for k in range(j))
+         - (sixth - g + g ** 2)),
+    ]
+
+
+def rosenbrock_order(method: LinearlyImplicit, weights=None) -> int:
+    """The largest p <= 3 such that every Rosenbrock order condition of order <= p holds.
+
+    Decided at the method's own tolerance (exactly for exact data), as order_of does for
+    tableaux; 0 if even the order-1 condition fails. Conditions above order 3 are not checked:
+    a method of higher order reports 3.
+
+    References
+    ----------
+    HW, section IV.7, Table 7.1 (from memory).
+    """
+    if weights is not None and len(weights) != method.stages:
+        raise MethodError(f"{method.id}: weights: must have {method.stages} entries")
+    tol = method.tolerance
+    found = 3
+    for order, residual in rosenbrock_residuals(method, weights):
+        if order > found:
+            break
+        held = (abs(float(sp.N(residual, _DIGITS))) <= tol) if tol > 0 else _is_zero(residual)
+        if not held:
+            found = order - 1
+    return found
 
 
 # ---------------------------------------------------------------------------------------------
@@ -550,7 +626,8 @@ class StabilityReport:
 class MethodReport:
     """What the analysis found about one method; stability fields are forwarded for convenience.
 
-    order is None for the exact (zero-order-hold) propagator, which has no finite order.
+    order is None for the exact (zero-order-hold) propagator, which has no finite order;
+    tolerance is the one the order conditions were decided to (0: exactly).
     """
 
     id: str
@@ -561,6 +638,7 @@ class MethodReport:
     kind: str
     stability: StabilityReport
     source: str
+    tolerance: float = 0.0
 
     @property
     def a_stable(self) -> bool:
@@ -585,7 +663,7 @@ class MethodReport:
     def as_dict(self) -> dict:
         return dict(id=self.id, name=self.name, stages=self.stages, order=self.order,
                     embedded_order=self.embedded_order, kind=self.kind, source=self.source,
-                    **self.stability.as_dict())
+                    tolerance=self.tolerance, **self.stability.as_dict())
 
 
 def _hurwitz_right(q: list) -> bool:
@@ -656,8 +734,8 @@ def analyse(method) -> MethodReport:
     """Order, embedded order, kind and linear stability of any method (cached per method).
 
     Tableaux: order conditions at the tableau's own tolerance and the stability function;
-    Rosenbrock methods: their stated order and stability function; the exact discretization:
-    R = exp(z), no finite order.
+    Rosenbrock methods: their order conditions up to order 3 at the method's own tolerance and
+    their stability function; the exact discretization: R = exp(z), no finite order.
 
     References
     ----------
@@ -671,13 +749,13 @@ def _analyse(method) -> MethodReport:
     if method.kind == EXACT:
         return analyse_exact(method)
     if method.kind == LINEARLY_IMPLICIT:
-        return MethodReport(method.id, method.name, method.stages, method.order,
-                            method.embedded_order, method.kind,
-                            rosenbrock_stability_report(method), method.source)
-    order = order_of(method)
-    embedded = order_of(method, method.b_hat) if method.b_hat is not None else None
+        order_fn, stability = rosenbrock_order, rosenbrock_stability_report(method)
+    else:
+        order_fn, stability = order_of, stability_report(method)
+    order = order_fn(method)
+    embedded = order_fn(method, method.b_hat) if method.b_hat is not None else None
     return MethodReport(method.id, method.name, method.stages, order, embedded, method.kind,
-                        stability_report(method), method.source)
+                        stability, method.source, method.tolerance)
 
 
 def analyse_exact(method) -> MethodReport:
@@ -700,32 +778,41 @@ def analyse_exact(method) -> MethodReport:
 # Numerical use of the stability function
 # ---------------------------------------------------------------------------------------------
 
-def _float_coefficients(tableau_or_r):
-    if isinstance(tableau_or_r, Tableau):
-        p, q = _tableau_polynomials(tableau_or_r)
-    elif isinstance(tableau_or_r, tuple) and len(tableau_or_r) == 2:
-        p, q = _coeffs(tableau_or_r[0]), _coeffs(tableau_or_r[1])
-    else:
-        num, den = sp.fraction(sp.cancel(sp.sympify(tableau_or_r)))
+def _float_coefficients(method_or_r):
+    """(P, Q) as float arrays (low to high) of a method of any kind, a rational expression in Z
+    or a pair (P, Q); None for R = exp(z)."""
+    if isinstance(method_or_r, tuple) and len(method_or_r) == 2:
+        p, q = _coeffs(method_or_r[0]), _coeffs(method_or_r[1])
+    elif isinstance(method_or_r, sp.Basic):
+        if method_or_r == sp.exp(Z):
+            return None
+        num, den = sp.fraction(sp.cancel(sp.sympify(method_or_r)))
         if not (num.is_polynomial(Z) and den.is_polynomial(Z)):
-            raise MethodError(f"stability function {tableau_or_r} is not rational in z")
+            raise MethodError(f"stability function {method_or_r} is not rational in z")
         p, q = _coeffs(num), _coeffs(den)
+    else:
+        coefficients = stability_coefficients(method_or_r)
+        if coefficients is None:
+            return None
+        p, q = coefficients
     return (np.array([float(c) for c in p]), np.array([float(c) for c in q]))
 
 
-def in_stability_region(tableau_or_r, z) -> np.ndarray:
+def in_stability_region(method_or_r, z) -> np.ndarray:
     """Elementwise |R(z)| <= 1 (with 1e-12 relative slack for boundary points), as a bool array.
 
-    tableau_or_r is a Tableau, a rational sympy expression in Z, a pair (P, Q), or sp.exp(Z).
+    method_or_r is a method of any kind, a rational sympy expression in Z, a pair (P, Q), or
+    sp.exp(Z) (stable exactly where Re z <= 0).
 
     References
     ----------
     HW, section IV.2, definition of the stability domain (from memory).
     """
     z = np.asarray(z, dtype=complex)
-    if isinstance(tableau_or_r, sp.Expr) and tableau_or_r == sp.exp(Z):
+    coefficients = _float_coefficients(method_or_r)
+    if coefficients is None:
         return z.real <= 0
-    p, q = _float_coefficients(tableau_or_r)
+    p, q = coefficients
     num = np.abs(np.polynomial.polynomial.polyval(z, p))
     den = np.abs(np.polynomial.polynomial.polyval(z, q))
     return num <= (1 + _REGION_SLACK) * den
