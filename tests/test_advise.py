@@ -278,3 +278,30 @@ def test_accuracy_of_the_exact_method_refuses_a_nonlinear_model_in_one_line():
                             1e-3, 0.1)
     assert "is nonlinear in 'w'" in str(info.value) and "\n" not in str(info.value)
 
+
+# ---------------------------------------------------------------------------------------------
+# Operation counts
+# ---------------------------------------------------------------------------------------------
+
+def test_square_roots_are_counted_as_square_roots_like_the_c_writes_them():
+    # A tank drained through an orifice (Torricelli: outflow ~ sqrt(level); common practice, no
+    # source) with a made-up 1/sqrt term: rate = u - sqrt(h) + 1/sqrt(h + 2).
+    h, u = sp.Symbol("h", real=True), sp.Symbol("u", real=True)
+    model = define("tank", [State("h", initial=1.0, rate=u - sp.sqrt(h) + 1 / sp.sqrt(h + 2))],
+                   inputs=[Input("u", default=0.5)])
+    rate = model.f[0]
+    # Two square roots and one division (1/sqrt); the additions u - ., . + ., h + 2.
+    assert cost_mod.count_expr(rate) == cost_mod.OperationCount(add=3, div=1, sqrt=2)
+    assert cost_mod.count_expr(sp.sqrt(h)) == cost_mod.OperationCount(sqrt=1)
+    assert cost_mod.count_expr(1 / sp.sqrt(h)) == cost_mod.OperationCount(div=1, sqrt=1)
+    # The generated C agrees: its rate function calls sqrt twice and divides once.
+    c_text = generate(model, builtin("euler"), 0.1, 1, "double").text("tank.c")
+    rates = c_text[c_text.index("static void tank_rates("):]
+    rates = rates[:rates.index("\n}\n")]
+    assert rates.count("sqrt(") == 2 and rates.count("/") == 1
+    # Per Euler step: one rate evaluation, then x + h * k (one multiply, one add).
+    from codegen.discretize import discretize
+    from codegen.simplify import simplify
+
+    cost = cost_mod.step_cost(simplify(discretize(model, builtin("euler"), 1)))
+    assert cost.sqrt == 2 and cost.div == 1
