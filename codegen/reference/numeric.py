@@ -69,12 +69,14 @@ def _scalar(model: Model, exprs, key, shape):
     out_shape = exprs.shape if isinstance(exprs, sp.MatrixBase) else (len(flat),)
     out_shape = out_shape if shape is None else shape
     nan = np.full(len(flat), np.nan).reshape(out_shape)
+    flat_result = shape == -1 or (shape is None and not isinstance(exprs, sp.MatrixBase))
 
     def call(t, x, u):
         try:
-            return np.array(fn(t, *x, *u), dtype=np.float64).reshape(out_shape)
+            out = np.array(fn(t, *x, *u), dtype=np.float64)
         except (OverflowError, ValueError, ZeroDivisionError):
             return nan.copy()
+        return out if flat_result else out.reshape(out_shape)
 
     return call
 
