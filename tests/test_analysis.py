@@ -482,6 +482,21 @@ def test_ray_directions_keep_the_largest_eigenvalue_of_each_direction():
     assert sorted(got, key=lambda v: (v.real, v.imag)) == [-1000.0, -6 + 8j, 5j]
 
 
+def test_the_float_proof_of_positivity_proves_only_what_holds():
+    # (t - 2)^2 + 1/1000 > 0 everywhere; (t - 2)^2 touches 0 at 2; 1 - t crosses at 1 (exact
+    # algebra, no source needed).
+    c = lambda expr: [sp.Rational(v) for v in reversed(sp.Poly(expr, analysis._T).all_coeffs())]
+    t = analysis._T
+    assert analysis._proven_positive(c((t - 2) ** 2 + sp.Rational(1, 1000)), 5)
+    assert not analysis._proven_positive(c((t - 2) ** 2), 5)
+    assert analysis._proven_positive(c(1 - t), sp.Rational(99, 100))
+    assert not analysis._proven_positive(c(1 - t), 2)
+    # ray_limit with a bound: None when the ray stays stable up to it, the limit when it does not.
+    rk4 = analysis.stability_coefficients(builtin("rk4"))
+    assert analysis.ray_limit(rk4, -1000 + 0j, upto=2.7e-3) is None
+    assert abs(analysis.ray_limit(rk4, -1000 + 0j, upto=2.9e-3) - 2.785293563e-3) < 1e-11
+
+
 def envelope_eigenvalues():
     """A lightly to well damped pair swept over its natural frequency, plus real modes: many
     directions, same-direction repeats, conjugates, a zero (common practice, no source:

@@ -513,12 +513,13 @@ def _evaluate(coeffs: list, point: sp.Rational) -> sp.Expr:
     return sum(c * point ** k for k, c in enumerate(coeffs))
 
 
-def _first_sign_loss(coeffs: list) -> sp.Rational | None:
+def _first_sign_loss(coeffs: list, upto: sp.Rational | None = None) -> sp.Rational | None:
     """Where f(t) = sum coeffs[k] t^k first stops being >= 0 for t > 0, exactly located.
 
     Returns 0 if f < 0 just right of 0, None if f >= 0 on all of (0, inf), otherwise the root t*
-    (a rational within 1e-40 of it) with f >= 0 on [0, t*] and f < 0 just after it. Roots where f touches
-    zero without changing sign (even multiplicity) do not end the interval.
+    (a rational within 1e-40 of it) with f >= 0 on [0, t*] and f < 0 just after it. Roots where f
+    touches zero without changing sign (even multiplicity) do not end the interval. With upto,
+    None also when f has no root at all in (0, upto] (a Sturm count, cheaper than locating one).
     """
     coeffs = _trim([_clean(c) for c in coeffs])
     low = next((k for k, c in enumerate(coeffs) if c != 0), None)
@@ -529,7 +530,11 @@ def _first_sign_loss(coeffs: list) -> sp.Rational | None:
         return sp.Integer(0)
     if len(coeffs) == 1:
         return None
+    if upto is not None and _proven_positive(coeffs, upto):
+        return None
     shadow = _rational_shadow(coeffs)
+    if upto is not None and shadow.count_roots(0, upto) == 0:
+        return None  # f(0) > 0 and no root of f (a root of its shadow) up to upto
     intervals = [iv for iv, _ in shadow.intervals(inf=0) if iv[1] > 0]
     # Sample f between isolating intervals, where it cannot vanish (a root of f is a root of its
     # shadow), so each sign is exact; the sign after the last root is that of the leading term.
@@ -543,6 +548,46 @@ def _first_sign_loss(coeffs: list) -> sp.Rational | None:
             root_left, root_right = shadow.refine_root(left, right, eps=sp.Rational(1, 10 ** 40))
             return (sp.Rational(root_left) + sp.Rational(root_right)) / 2
     return None
+
+
+# Floating-point proof that a polynomial stays positive: subintervals to start with, halving
+# rounds for those not yet proven, and the most subintervals before the exact count takes over.
+_PROOF_PIECES = 64
+_PROOF_ROUNDS = 10
+_PROOF_MAX_PIECES = 4096
+# A float lower bound counts only when it exceeds this fraction of sum |c_k| t^k: far above the
+# rounding of the coefficients (1e-16 relative) and of the float sums (degree * 1e-16).
+_PROOF_MARGIN = 1e-9
+
+
+def _proven_positive(coeffs: list, upto) -> bool:
+    """True when f(t) = sum coeffs[k] t^k > 0 on all of [0, upto] is proven in floating point.
+
+    On [a, b] with 0 <= a, each term c_k t^k is at least c_k a^k (c_k > 0) or c_k b^k (c_k < 0),
+    so their sum bounds f from below; a piece is proven when that bound exceeds _PROOF_MARGIN
+    times sum |c_k| b^k. False means only "not proven" (a root, a touch, or too close to tell):
+    the caller then counts the roots exactly.
+    """
+    c = np.array([float(sp.N(v, 20)) for v in coeffs])
+    if not np.all(np.isfinite(c)):
+        return False
+    k = np.arange(len(c))
+    edges = np.linspace(0.0, float(upto), _PROOF_PIECES + 1)
+    a, b = edges[:-1], edges[1:]
+    for _ in range(_PROOF_ROUNDS):
+        with np.errstate(over="ignore", invalid="ignore"):
+            ta, tb = a[:, None] ** k, b[:, None] ** k
+            low = np.where(c > 0, c * ta, c * tb).sum(axis=1)
+            scale = (np.abs(c) * tb).sum(axis=1)
+        open_ = ~(np.isfinite(low) & np.isfinite(scale) & (low > _PROOF_MARGIN * scale))
+        if not open_.any():
+            return True
+        a, b = a[open_], b[open_]
+        if 2 * a.size > _PROOF_MAX_PIECES:
+            return False
+        mid = (a + b) / 2
+        a, b = np.concatenate([a, mid]), np.concatenate([mid, b])
+    return False
 
 
 def _separated(shadow: sp.Poly, intervals: list) -> list:
@@ -831,15 +876,18 @@ def stability_coefficients(method) -> tuple[tuple, tuple] | None:
     return _tableau_polynomials(method)
 
 
-def ray_limit(coefficients: tuple[tuple, tuple], lam: complex) -> float | None:
+def ray_limit(coefficients: tuple[tuple, tuple], lam: complex,
+              upto: float | None = None) -> float | None:
     """The first h > 0 at which h*lambda leaves the stability region of R = P/Q, or None.
 
     Found exactly as the first sign change of |Q(h lambda)|^2 - |P(h lambda)|^2 in h (a touch
-    without crossing does not count).
+    without crossing does not count). With upto, None also when the ray provably stays in the
+    region up to h = upto.
     """
     p, q = coefficients
+    bound = None if upto is None else sp.Rational(float(upto))
     h = _first_sign_loss(_ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
-                                         sp.Rational(abs(float(lam.imag)))))
+                                         sp.Rational(abs(float(lam.imag)))), bound)
     return None if h is None else float(h)
 
 
@@ -869,7 +917,8 @@ def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     result is in seconds. The eigenvalues are reduced to one per ray direction (ray_directions);
     an A-stable method is unbounded when every Re lambda <= 0; otherwise each ray h*lambda,
     h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed, exactly
-    (ray_limit). margin in (0, 1] is a safety factor. Returns math.inf if every ray stays stable,
+    (ray_limit): the most restrictive ray by a numerical scan first, every other ray only as far
+    as the limit found so far (an exact root count), so the scan decides nothing. margin in (0, 1] is a safety factor. Returns math.inf if every ray stays stable,
     0.0 if some h*lambda leaves the region at once (for example Re lambda > 0, or an explicit
     method with lambda on the imaginary axis).
 
@@ -890,9 +939,30 @@ def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
         return 0.0 if np.any(directions.real > 0) else math.inf
     if directions.size == 0 or (np.all(directions.real <= 0) and analyse(method).a_stable):
         return math.inf
+    # The most restrictive ray first (a numerical scan only orders the work): every later ray
+    # then needs only the exact proof that it stays stable up to the limit found so far.
     limit = math.inf
-    for lam in directions:
-        h = ray_limit(coefficients, lam)
+    for lam in directions[np.argsort(_scanned_limits(coefficients, directions), kind="stable")]:
+        h = ray_limit(coefficients, lam, None if math.isinf(limit) else limit)
         if h is not None:
             limit = min(limit, h)
     return limit * margin
+
+
+# Geometric grid of h*|lambda| for the numerical scan that orders the rays (0.6 % steps).
+_RAY_GRID = np.geomspace(1e-6, 1e4, 4001)
+
+
+def _scanned_limits(coefficients, directions: np.ndarray) -> np.ndarray:
+    """For each ray, the first grid point of h outside |R| <= 1 (inf if none): an estimate."""
+    p, q = (np.array([float(c) for c in v]) for v in coefficients)
+    out = np.full(directions.size, math.inf)
+    for k, lam in enumerate(directions):
+        z = _RAY_GRID * lam / abs(lam)
+        with np.errstate(all="ignore"):
+            outside = np.abs(np.polynomial.polynomial.polyval(z, p)) > \
+                (1 + _REGION_SLACK) * np.abs(np.polynomial.polynomial.polyval(z, q))
+        bad = np.flatnonzero(outside)
+        if bad.size:
+            out[k] = _RAY_GRID[bad[0]] / abs(lam)
+    return out
