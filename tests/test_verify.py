@@ -12,7 +12,7 @@ from click.testing import CliRunner
 from codegen.build import build
 from codegen.cli import main
 from codegen.methods import EXPLICIT, builtin, builtin_ids
-from codegen.model import Input, Parameter, State, define, load_model
+from codegen.model import Parameter, State, define, load_model
 from codegen.pipeline import generate
 from codegen.resources import examples_dir
 from codegen.run import run_c
@@ -135,7 +135,6 @@ def test_cross_check_catches_a_wrong_coefficient(heater):
     bad = replace(good, b=(sp.Rational(1, 6) + sp.Rational(1, 1000), sp.Rational(1, 3) -
                            sp.Rational(1, 1000), sp.Rational(1, 3), sp.Rational(1, 6)))
     from codegen import reference
-    from codegen.run import as_precision
     from codegen.verify import excitation
 
     model = heater
