@@ -58,7 +58,9 @@ def say(message: str) -> None:
 
 def method_options(fn):
     fn = click.option("--tableau", "tableau_file", type=click.Path(dir_okay=False, path_type=Path),
-                      help="A TOML file with your own tableau (name, a, b, c[, order, b_hat]).")(fn)
+                      help="A TOML file with your own method: a Butcher tableau (name, a, b, c"
+                           "[, order, b_hat]) or a Rosenbrock method (kind = \"rosenbrock\"; see "
+                           "the README).")(fn)
     fn = click.option("--method", "method_id", metavar="NAME",
                       help="A built-in method id (see 'tickwright methods').")(fn)
     return fn
@@ -99,12 +101,12 @@ def generation_options(method, newton_iterations, newton_tol, linear_solve) -> d
 
 
 def resolve_method(method_id: str | None, tableau_file: Path | None):
-    from .methods import builtin, load_tableau
+    from .methods import builtin, load_method_file
 
     if method_id and tableau_file:
         raise click.UsageError("give either --method or --tableau, not both")
     if tableau_file:
-        return load_tableau(tableau_file)
+        return load_method_file(tableau_file)
     if not method_id:
         raise click.UsageError("missing --method NAME (or --tableau FILE); see 'tickwright methods'")
     return builtin(method_id)
@@ -194,6 +196,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
     it bit for bit with the host build and report flash, stack and instructions per tick.
     Exit status 1 when any check fails.
     """
+    from .methods import tolerance_note
     from .report import CheckOutcome
     from .report.json import check_data, json_text
     from .report.text import check_lines
@@ -207,7 +210,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
         precisions = tuple(sorted({t.default_precision for t in targets}))
     else:
         precisions = ("float", "double") if precision == "both" else (precision,)
-    if error_estimate and getattr(method, "b_hat", None) is None:
+    if error_estimate and method.b_hat is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
@@ -228,7 +231,8 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
                                         plot_dir, plot_format, options))
     target_reports = tuple(check_on_targets(model, method, dt, substeps, precisions, ticks,
                                             targets, options, progress=say))
-    outcome = CheckOutcome(report, method.name, estimates, target_reports, pictures)
+    outcome = CheckOutcome(report, method.name, estimates, target_reports, pictures,
+                           method_note=tolerance_note(method))
     if as_json:
         click.echo(json_text(check_data(outcome)))
     else:
@@ -295,11 +299,11 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
 @guarded
 def methods(tableau_file, as_json):
     """List the built-in methods (or analyse a tableau file): stages, order, kind, source."""
-    from .methods import builtin, builtin_ids, load_tableau
+    from .methods import builtin, builtin_ids, load_method_file
     from .report.json import json_text, method_rows
     from .report.text import methods_table
 
-    methods = [load_tableau(tableau_file)] if tableau_file else \
+    methods = [load_method_file(tableau_file)] if tableau_file else \
         [builtin(i) for i in builtin_ids()]
     rows = method_rows(methods)
     if as_json:

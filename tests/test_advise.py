@@ -1,4 +1,4 @@
-"""Step-size advice (codegen.advise), the methods table and the run-time error estimate.
+"""Step-size advice (codegen.advice): envelope, stability limits over it, error and cost estimates.
 
 Outside references: published stability limits (HNW = Hairer, Norsett & Wanner, Solving ODEs I,
 2nd ed., 1993; HW = Hairer & Wanner, Solving ODEs II, 2nd ed., 1996; Lambert, Numerical Methods for
@@ -17,18 +17,18 @@ import sympy as sp
 from click.testing import CliRunner
 from scipy.optimize import brentq
 
-from codegen.advice import recommend as advice_mod
+from codegen.advice import cost as cost_mod
 from codegen.advice import envelope as envelope_mod
-from codegen.verify import estimate as estimate_mod
+from codegen.advice import recommend as advice_mod
 from codegen.build import build
 from codegen.cli import main
-from codegen.methods import builtin, builtin_ids
-from codegen.model import Input, Parameter, State, define, load_model
+from codegen.methods import analysis, builtin, builtin_ids
+from codegen.model import Input, State, define, load_model
 from codegen.pipeline import generate
 from codegen.reference import high_accuracy
 from codegen.resources import examples_dir
 from codegen.run import run_c
-from codegen.verify import excitation
+from codegen.verify import excitation, state_scales
 
 IMPLICIT_KINDS = ("diagonally implicit", "fully implicit", "linearly implicit")
 
@@ -76,9 +76,9 @@ def test_linear_model_eigenvalues_are_the_closed_form_ones():
 
 
 @pytest.mark.parametrize("method_id, R", [("euler", taylor(1)), ("rk4", taylor(4)), ("dp5", dp5)])
-def test_max_stable_dt_matches_the_analytic_value(method_id, R):
+def test_max_stable_dt_over_the_envelope_matches_the_analytic_value(method_id, R):
     values, _ = envelope_mod.eigenvalues(linear_model())
-    got = advice_mod.max_stable_dt(builtin(method_id), values)
+    got = analysis.max_stable_dt(builtin(method_id), values)
     # Euler on the real axis: h = 2/1000 (HNW I IV.2 [mem]); on the pair |1 + h lambda| = 1 gives
     # h = -2 Re(lambda)/|lambda|^2 in closed form (common practice, no source).
     expected = min(ray_limit(R, -FAST), ray_limit(R, pair()))
@@ -100,7 +100,7 @@ def test_a_stable_methods_are_unbounded_and_growing_modes_are_left_out(method_id
     # A-stable: |R| <= 1 on the whole left half plane (HW IV.3 [mem]; Verwer, Spee, Blom &
     # Hundsdorfer 1999 for ROS2; |exp(z)| <= 1 there for the exact step, common practice, no source).
     assert method_id in builtin_ids()
-    assert advice_mod.max_stable_dt(builtin(method_id), values) == math.inf
+    assert analysis.max_stable_dt(builtin(method_id), values) == math.inf
     assert list(envelope_mod.decaying(np.array([2.0, -1.0]))) == [-1.0]
 
 
@@ -139,7 +139,7 @@ def c_error(model, method_id, dt, precision, horizon):
     built = build(generate(model, method, dt, 1, precision), model)
     run = run_c(built, model, u)
     exact = high_accuracy(model, dt, u)
-    scales = advice_mod.state_scales(model, exact.xs)
+    scales = state_scales(model, exact.xs)
     return run.completed == n, float(np.nanmax(np.abs(run.xs - exact.xs) / scales))
 
 
@@ -191,7 +191,7 @@ def test_float_roundoff_estimate_bounds_the_measured_float_error_and_picks_doubl
     u = excitation(model, n)
     runs = {p: run_c(build(generate(model, method, dt, 1, p), model), model, u) for p in
             ("float", "double")}
-    scales = advice_mod.state_scales(model)
+    scales = state_scales(model)
     measured = float(np.max(np.abs(runs["float"].xs - runs["double"].xs) / scales))
     bound = advice_mod.roundoff(method, n, "float", bound=True)
     # float32 unit roundoff 2^-24 per rounding (IEEE 754; common practice, no source).
@@ -236,109 +236,6 @@ def test_advise_cli_error_is_one_line():
     assert result.output.strip().count("\n") == 0 and "nowhere.toml" in result.output
 
 
-# ---------------------------------------------------------------------------------------------
-# methods: every kind
-# ---------------------------------------------------------------------------------------------
-
-def test_methods_json_is_complete_for_every_kind():
-    result = CliRunner().invoke(main, ["methods", "--json"])
-    assert result.exit_code == 0, result.output
-    rows = {r["id"]: r for r in json.loads(result.stdout)}
-    assert set(rows) == set(builtin_ids())
-    keys = {"name", "stages", "order", "embedded_order", "kind", "a_stable", "l_stable",
-            "real_axis_limit", "imag_axis_limit", "source"}
-    assert all(keys <= set(r) for r in rows.values())
-    # Real-axis limits (Lambert 1991, section 5.12 [mem]; DP5's imaginary-axis limit HNW I IV.2
-    # [mem]) and embedded orders (Bogacki & Shampine 1989 [mem]; Dormand & Prince 1980).
-    assert math.isclose(rows["rk4"]["real_axis_limit"], -2.785293563, rel_tol=1e-9)
-    assert math.isclose(rows["dp5"]["imag_axis_limit"], 0.997189, rel_tol=1e-5)
-    assert (rows["bs3"]["order"], rows["bs3"]["embedded_order"]) == (3, 2)
-    assert rows["euler"]["a_stable"] is False
-    # A- and L-stability (HW IV.3-IV.6 [mem]; Verwer et al. 1999 for ROS2); SDIRK3's data are
-    # rounded, its order 3 needs the rounded-data tolerance.
-    expected = {"backward-euler": (True, True, 1), "trapezoidal": (True, False, 2),
-                "gauss2": (True, False, 4), "radau-iia3": (True, True, 5),
-                "sdirk3": (True, True, 3), "ros2": (True, True, 2)}
-    for method_id, (a, l, p) in expected.items():
-        assert method_id in rows, method_id
-        r = rows[method_id]
-        assert (r["a_stable"], r["l_stable"], r["order"]) == (a, l, p), method_id
-        assert r["real_axis_limit"] is None
-    exact = [r for r in rows.values() if r["kind"] == "exact"]
-    assert [r["id"] for r in exact] == ["zoh-exact"]
-    assert all(r["order"] is None and r["a_stable"] for r in exact)
-
-
-def test_methods_analyses_a_user_tableau(tmp_path):
-    path = tmp_path / "ralston3.toml"
-    # Ralston's 3rd-order method (Ralston 1962, Math. Comp. 16 [mem]); any 3-stage order-3 explicit
-    # method has the real-axis limit -2.512745327 (Lambert 1991, section 5.12 [mem]).
-    path.write_text('name = "Ralston 3"\nc = [0, "1/2", "3/4"]\nb = ["2/9", "1/3", "4/9"]\n'
-                    'a = [[0, 0, 0], ["1/2", 0, 0], [0, "3/4", 0]]\n', encoding="utf-8")
-    result = CliRunner().invoke(main, ["methods", "--tableau", str(path), "--json"])
-    assert result.exit_code == 0, result.output
-    (row,) = json.loads(result.stdout)
-    assert row["order"] == 3 and row["kind"] == "explicit"
-    assert math.isclose(row["real_axis_limit"], -2.512745327, rel_tol=1e-9)
-
-
-# ---------------------------------------------------------------------------------------------
-# Run-time error estimate in the generated C
-# ---------------------------------------------------------------------------------------------
-
-def test_default_output_has_no_error_estimate_and_is_unchanged_by_the_option_off():
-    model = load_model(examples_dir() / "axis.toml")
-    plain = generate(model, builtin("dp5"), 1e-3, 1, "float")
-    off = generate(model, builtin("dp5"), 1e-3, 1, "float", error_estimate=False)
-    on = generate(model, builtin("dp5"), 1e-3, 1, "float", error_estimate=True)
-    assert plain.files == off.files
-    assert "advance_with_error" not in "".join(t for _, t in plain.files)
-    assert "axis_advance_with_error(axis_ctx_t *tw_ctx, axis_real_t *tw_err);" in on.text("axis.h")
-    assert "fabsf(" in on.text("axis.c") and "fabs(" not in on.text("axis.c").replace("fabsf(", "")
-
-
-@pytest.mark.parametrize("method_id", ["bs3", "dp5"])
-@pytest.mark.parametrize("precision", ["float", "double"])
-def test_c_error_estimate_equals_the_reference_embedded_difference(method_id, precision):
-    model = load_model(examples_dir() / "axis.toml")
-    result = estimate_mod.check_error_estimate(model, builtin(method_id), 2e-4, 2, precision, 60)
-    assert result.passed, result
-    assert result.largest_estimate > 0
-
-
-@pytest.mark.parametrize("method_id, embedded", [("bs3", 2), ("dp5", 4)])
-def test_c_error_estimate_scales_like_h_to_the_embedded_order_plus_one(method_id, embedded):
-    # The embedded solution has order p_hat, so its local error is C h^(p_hat + 1) (HNW I II.4
-    # [mem]); halving h divides the estimate by about 2^(p_hat + 1). Embedded orders: Bogacki &
-    # Shampine 1989 [mem]; Dormand & Prince 1980.
-    model = load_model(examples_dir() / "axis.toml")
-    method = builtin(method_id)
-    x0 = (3.0, 120.0, 0.1)
-    estimates = []
-    for h in (4e-5, 2e-5, 1e-5):
-        built = build(generate(model, method, h, 1, "double", error_estimate=True), model)
-        ffi, lib = built.ffi, built.lib
-        ctx = ffi.new("axis_ctx_t *")
-        lib.axis_reset(ctx)
-        ctx.i, ctx.w, ctx.x, ctx.V = *x0, 6.0
-        err = ffi.new("axis_real_t *")
-        assert lib.axis_advance_with_error(ctx, err) == lib.AXIS_OK
-        _, expected = estimate_mod.embedded_estimate(model, method, 0.0, np.array(x0), np.array([6.0]), h)
-        assert math.isclose(err[0], expected, rel_tol=1e-6)
-        estimates.append(err[0])
-    slopes = np.log2(np.array(estimates[:-1]) / np.array(estimates[1:]))
-    assert np.all(np.abs(slopes - (embedded + 1)) < 0.2), slopes
-
-
-def test_error_estimate_needs_an_embedded_pair():
-    runner = CliRunner()
-    model = str(examples_dir() / "heater.toml")
-    result = runner.invoke(main, ["emit", model, "--method", "rk4", "--dt", "0.1",
-                                  "--out", "unused", "--error-estimate"])
-    assert result.exit_code == 1
-    assert "b_hat" in result.output and result.output.strip().count("\n") == 0
-
-
 @pytest.mark.parametrize("name", ["heater", "battery"])
 def test_the_recommendation_can_always_be_generated(name):
     # Regression: zoh-exact was once recommended for the heater, whose tunable C_th sits in the
@@ -353,3 +250,64 @@ def test_the_recommendation_can_always_be_generated(name):
     if name == "heater":
         row = advice.row("zoh-exact")
         assert "tunable" in row.to_dict()["note"]
+
+
+# ---------------------------------------------------------------------------------------------
+# The estimates run the reference's steppers
+# ---------------------------------------------------------------------------------------------
+
+def test_accuracy_takes_iterations_and_the_embedded_error_from_the_reference_stepper():
+    from codegen import reference
+    from codegen.reference.steppers import SIMPLIFIED_NEWTON
+
+    model = nonlinear_stiff_model()
+    dt, horizon = 0.01, 0.5
+    n = int(round(horizon / dt))
+    u = excitation(model, n)
+    acc = advice_mod.accuracy(model, builtin("sdirk2"), dt, horizon)
+    step = reference.stepper(model, builtin("sdirk2"), newton=SIMPLIFIED_NEWTON, scalar=True)
+    run = reference.run(model, builtin("sdirk2"), dt, 1, u, stepper=step)
+    # Simplified Newton with J frozen (as in the C) on a nonlinear model: more than the two
+    # iterations a linear model takes, and what the reference's stepper counted.
+    assert acc.completed and acc.newton_iterations == run.newton_iterations / n > 2
+    ops, note = cost_mod.operations_per_step(model, builtin("sdirk2"), acc.newton_iterations)
+    assert f"{math.ceil(acc.newton_iterations)} Newton iteration(s)" in note and ops > 0
+    bs3 = advice_mod.accuracy(model, builtin("bs3"), 5e-5, 5e-3)
+    assert bs3.local_by == "embedded pair" and 0 < bs3.local_error < bs3.global_error + 1e-3
+
+
+def test_accuracy_of_the_exact_method_refuses_a_nonlinear_model_in_one_line():
+    from codegen.errors import CheckError
+
+    with pytest.raises(CheckError) as info:
+        advice_mod.accuracy(load_model(examples_dir() / "axis.toml"), builtin("zoh-exact"),
+                            1e-3, 0.1)
+    assert "is nonlinear in 'w'" in str(info.value) and "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------------------------------------
+# Operation counts
+# ---------------------------------------------------------------------------------------------
+
+def test_square_roots_are_counted_as_square_roots_like_the_c_writes_them():
+    # A tank drained through an orifice (Torricelli: outflow ~ sqrt(level); common practice, no
+    # source) with a made-up 1/sqrt term: rate = u - sqrt(h) + 1/sqrt(h + 2).
+    h, u = sp.Symbol("h", real=True), sp.Symbol("u", real=True)
+    model = define("tank", [State("h", initial=1.0, rate=u - sp.sqrt(h) + 1 / sp.sqrt(h + 2))],
+                   inputs=[Input("u", default=0.5)])
+    rate = model.f[0]
+    # Two square roots and one division (1/sqrt); the additions u - ., . + ., h + 2.
+    assert cost_mod.count_expr(rate) == cost_mod.OperationCount(add=3, div=1, sqrt=2)
+    assert cost_mod.count_expr(sp.sqrt(h)) == cost_mod.OperationCount(sqrt=1)
+    assert cost_mod.count_expr(1 / sp.sqrt(h)) == cost_mod.OperationCount(div=1, sqrt=1)
+    # The generated C agrees: its rate function calls sqrt twice and divides once.
+    c_text = generate(model, builtin("euler"), 0.1, 1, "double").text("tank.c")
+    rates = c_text[c_text.index("static void tank_rates("):]
+    rates = rates[:rates.index("\n}\n")]
+    assert rates.count("sqrt(") == 2 and rates.count("/") == 1
+    # Per Euler step: one rate evaluation, then x + h * k (one multiply, one add).
+    from codegen.discretize import discretize
+    from codegen.simplify import simplify
+
+    cost = cost_mod.step_cost(simplify(discretize(model, builtin("euler"), 1)))
+    assert cost.sqrt == 2 and cost.div == 1

@@ -486,3 +486,182 @@ def test_max_stable_dt_takes_every_method_kind():
     assert analysis.max_stable_dt(builtin("zoh-exact"), [-1e6]) == math.inf
     assert analysis.max_stable_dt(builtin("zoh-exact"), [0.5]) == 0.0
     assert analysis.stability_coefficients(builtin("zoh-exact")) is None
+
+
+def test_ray_directions_keep_the_largest_eigenvalue_of_each_direction():
+    # On a ray the limit is t*/|lambda| (t* fixed by the direction): only the largest |lambda| of
+    # a direction binds; conjugates share a direction, zero has none.
+    values = [-1.0, -1000.0, -3 + 4j, -6 - 8j, -0.3 + 0.4j, 0.0, 2j, -5j]
+    got = analysis.ray_directions(values)
+    assert sorted(got, key=lambda v: (v.real, v.imag)) == [-1000.0, -6 + 8j, 5j]
+
+
+def test_the_float_proof_of_positivity_proves_only_what_holds():
+    # (t - 2)^2 + 1/1000 > 0 everywhere; (t - 2)^2 touches 0 at 2; 1 - t crosses at 1 (exact
+    # algebra, no source needed).
+    c = lambda expr: [sp.Rational(v) for v in reversed(sp.Poly(expr, analysis._T).all_coeffs())]
+    t = analysis._T
+    assert analysis._proven_positive(c((t - 2) ** 2 + sp.Rational(1, 1000)), 5)
+    assert not analysis._proven_positive(c((t - 2) ** 2), 5)
+    assert analysis._proven_positive(c(1 - t), sp.Rational(99, 100))
+    assert not analysis._proven_positive(c(1 - t), 2)
+    # ray_limit with a bound: None when the ray stays stable up to it, the limit when it does not.
+    rk4 = analysis.stability_coefficients(builtin("rk4"))
+    assert analysis.ray_limit(rk4, -1000 + 0j, upto=2.7e-3) is None
+    assert abs(analysis.ray_limit(rk4, -1000 + 0j, upto=2.9e-3) - 2.785293563e-3) < 1e-11
+
+
+def envelope_eigenvalues():
+    """A lightly to well damped pair swept over its natural frequency, plus real modes: many
+    directions, same-direction repeats, conjugates, a zero (common practice, no source:
+    lambda = -zeta w +- i w sqrt(1 - zeta^2))."""
+    values = [0.0, -5.0, -40.0]
+    for w in (20.0, 35.0, 50.0):
+        for zeta in (0.05, 0.2, 0.7):
+            pole = complex(-zeta * w, w * math.sqrt(1 - zeta ** 2))
+            values += [pole, pole.conjugate()]
+    return np.array(values)
+
+
+@pytest.mark.parametrize("method_id, r_numeric", [
+    ("euler", lambda z: 1 + z),
+    ("kutta3", lambda z: 1 + z + z ** 2 / 2 + z ** 3 / 6),
+    ("rk4", lambda z: 1 + z + z ** 2 / 2 + z ** 3 / 6 + z ** 4 / 24),
+])
+def test_max_stable_dt_over_an_envelope_is_the_smallest_single_limit(method_id, r_numeric):
+    # The envelope use (many eigenvalues at once, reduced to one per direction) must give the
+    # smallest of the limits found one eigenvalue at a time by an independent scan of |R| (R the
+    # Taylor polynomial, HNW I IV.2 [mem]).
+    values = envelope_eigenvalues()
+    got = analysis.max_stable_dt(builtin(method_id), values)
+    singles = [first_unstable_step(r_numeric, lam, 10.0 / abs(lam), samples=20_000)
+               for lam in values if lam != 0]
+    assert abs(got - min(singles)) < 1e-3 * min(singles)
+    # ...and the exact use, one eigenvalue at a time, agrees with each scan.
+    for lam, want in zip([v for v in values if v != 0][:4], singles[:4]):
+        assert abs(analysis.max_stable_dt(builtin(method_id), [lam]) - want) < 1e-3 * want
+
+
+def test_max_stable_dt_of_an_a_stable_method_over_an_envelope_is_unbounded_or_zero():
+    values = envelope_eigenvalues()
+    # Rosenbrock-Euler R = 1/(1 - z) and SDIRK2 are A-stable (HW IV.3, IV.7 [mem]).
+    for method in (builtin("rosenbrock-euler"), implicit("sdirk2"), builtin("zoh-exact")):
+        assert analysis.max_stable_dt(method, values) == math.inf
+        # A growing mode leaves the region at once (|R(h lambda)| > 1 for small h > 0).
+        assert analysis.max_stable_dt(method, np.append(values, 0.5 + 3j)) == 0.0
+
+
+# ---------------------------------------------------------------------------------------------
+# Rosenbrock order conditions
+# ---------------------------------------------------------------------------------------------
+
+# Two Rosenbrock methods built for these tests in the form of types.LinearlyImplicit. The first
+# was constructed in Hairer & Wanner's form (gamma = 1/2, their alpha21 = 1/2, alpha32 = 1,
+# gamma21 = 1, gamma32 = -41/35, b = (23/36, 1/27, 35/108)) to meet the order conditions up to
+# order 3, then transformed to ours; its stage times (0, 1/2, 1) differ from the row sums of our
+# alpha (0, 1/2, -1). The second meets only the order-1 condition.
+ORDER3_ROSENBROCK = dict(
+    kind="rosenbrock", name="3 stages, order 3 (test)", gamma="1/2",
+    alpha=[[0, 0, 0], ["1/2", 0, 0], [-2, 1, 0]],
+    coupling=[[0, 0, 0], [2, 0, 0], ["164/35", "-82/35", 0]],
+    b=["-103/108", "43/54", "35/108"])
+ORDER1_ROSENBROCK = dict(
+    kind="rosenbrock", name="2 stages, order 1 (test)", gamma=1,
+    alpha=[[0, 0], [1, 0]], coupling=[[0, 0], [-1, 0]], b=[1, "1/2"])
+
+
+def rosenbrock(data):
+    from codegen.methods import rosenbrock_from_data
+
+    return rosenbrock_from_data(data, "test")
+
+
+def test_rosenbrock_order_conditions_of_the_builtins_and_the_test_methods():
+    # Rosenbrock-Euler is order 1, ROS2 order 2 (Verwer et al. 1999; HW IV.7 [mem]).
+    assert analysis.rosenbrock_order(builtin("rosenbrock-euler")) == 1
+    assert analysis.rosenbrock_order(builtin("ros2")) == 2
+    assert analysis.analyse(builtin("ros2")).order == 2
+    assert analysis.rosenbrock_order(rosenbrock(ORDER3_ROSENBROCK)) == 3
+    assert analysis.rosenbrock_order(rosenbrock(ORDER1_ROSENBROCK)) == 1
+    assert rosenbrock(ORDER3_ROSENBROCK).c == (0, sp.Rational(1, 2), 1)
+    # A tolerance accepts a residual below it and nothing larger.
+    nudged = dict(ORDER3_ROSENBROCK, b=["-103/108 + 1e-14", "43/54", "35/108 - 1e-14"])
+    assert rosenbrock(nudged).tolerance > 0 and analysis.rosenbrock_order(rosenbrock(nudged)) == 3
+    assert analysis.rosenbrock_order(dataclasses.replace(rosenbrock(nudged), tolerance=0.0)) < 3
+
+
+def hairer_wanner_step(method, f, jac, y, h):
+    """One step in Hairer & Wanner's form, written out here from HW IV.7 (7.4) [mem]:
+    (I - gamma h J) K_i = h f(y + sum_j alpha_ij K_j) + h J sum_{j<i} gamma_ij K_j,
+    y1 = y + sum_i b_i K_i (autonomous f)."""
+    big_gamma, alpha, b = analysis.hairer_wanner_form(method)
+    s, n, g = method.stages, len(y), float(method.gamma)
+    J = jac(y)
+    K = np.zeros((s, n))
+    for i in range(s):
+        rhs = h * f(y + sum(float(alpha[i][j]) * K[j] for j in range(i))) \
+            + h * J @ sum((float(big_gamma[i][j]) * K[j] for j in range(i)), np.zeros(n))
+        K[i] = np.linalg.solve(np.eye(n) - g * h * J, rhs)
+    return y + sum(float(b[i]) * K[i] for i in range(s))
+
+
+def nonlinear_model():
+    x, y = sp.Symbol("x", real=True), sp.Symbol("y", real=True)
+    from codegen.model import State, define
+
+    return define("nl", [State("x", initial=1.0, rate=-x * y + sp.sin(y)),
+                         State("y", initial=0.5, rate=x - y ** 3)])
+
+
+@pytest.mark.parametrize("data", [ORDER3_ROSENBROCK, ORDER1_ROSENBROCK], ids=["order3", "order1"])
+def test_our_rosenbrock_form_is_hairer_wanners_after_the_transformation(data):
+    from codegen.reference import jacobian_function, rate_function, stepper
+
+    method, model = rosenbrock(data), nonlinear_model()
+    f, jac = rate_function(model), jacobian_function(model)
+    y, h = np.array([1.0, 0.5]), 0.1
+    theirs = hairer_wanner_step(method, lambda v: f(0.0, v, []), lambda v: jac(0.0, v, []), y, h)
+    ours = stepper(model, method)(0.0, y, [], h).x
+    np.testing.assert_allclose(ours, theirs, rtol=1e-13, atol=1e-15)
+
+
+def time_dependent_model():
+    x, t = sp.Symbol("x", real=True), sp.Symbol("t", real=True)
+    from codegen.model import State, define
+
+    return define("td", [State("x", initial=1.0, rate=-x + sp.sin(3 * t) * x ** 2 / 4 + sp.cos(t))])
+
+
+def measured_order(model, method, steps=(128, 256, 512, 1024)):
+    from codegen.reference import high_accuracy, run
+
+    exact = high_accuracy(model, 1.0, np.zeros((1, 0)), rtol=1e-13).xs[-1]
+    errors = [np.max(np.abs(run(model, method, 1.0 / n, 1, np.zeros((n, 0))).xs[-1] - exact))
+              for n in steps]
+    return float(-np.polyfit(np.log(steps), np.log(errors), 1)[0])
+
+
+@pytest.mark.parametrize("make", [nonlinear_model, time_dependent_model], ids=["nl", "time"])
+@pytest.mark.parametrize("method, order", [
+    (lambda: builtin("ros2"), 2), (lambda: builtin("rosenbrock-euler"), 1),
+    (lambda: rosenbrock(ORDER3_ROSENBROCK), 3), (lambda: rosenbrock(ORDER1_ROSENBROCK), 1)],
+    ids=["ros2", "rosenbrock-euler", "order3", "order1"])
+def test_rosenbrock_conditions_predict_the_measured_convergence_order(make, method, order):
+    # The conditions (HW IV.7, Table 7.1, from memory) are confirmed by the convergence order the
+    # reference reaches against solve_ivp; on the time-dependent model the derived stage times
+    # and time weights are needed as well (with the row sums of our alpha as stage times the
+    # order-3 method drops to order 1).
+    method = method()
+    assert analysis.rosenbrock_order(method) == order
+    assert abs(measured_order(make(), method) - order) < 0.15
+
+
+def test_in_stability_region_takes_every_method_kind():
+    # ROS2's R (written out from Verwer et al. 1999, see test_ros2_and_rosenbrock_euler) and
+    # exp(z) of the exact discretization, |exp(z)| = exp(Re z) (common practice, no source).
+    g = 1 + 1 / math.sqrt(2)
+    z = np.array([-1e3, -0.5 + 3j, 0.2, 1e-3 + 1e3j, 5.0])
+    r = (1 + (1 - 2 * g) * z + (g * g - 2 * g + 0.5) * z ** 2) / (1 - g * z) ** 2
+    assert list(analysis.in_stability_region(builtin("ros2"), z)) == list(np.abs(r) <= 1)
+    assert list(analysis.in_stability_region(builtin("zoh-exact"), z)) == \
+        [True, True, False, False, False]

@@ -23,7 +23,7 @@ from codegen.build import build, strict_compile
 from codegen.methods import with_order
 from codegen.errors import MethodError, ModelError
 from codegen.discretize import DENSE_LU, ELIMINATION, INVERSE, discretize_implicit, jacobian
-from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_tableau)
+from codegen.methods import (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, builtin, load_method_file)
 from codegen.model import Input, Parameter, State, define
 from codegen.pipeline import generate
 from codegen.run import run_c
@@ -489,14 +489,14 @@ a = [["1/2 + sqrt(3)/6", 0], ["-sqrt(3)/3", "1/2 + sqrt(3)/6"]]
 def test_an_implicit_user_tableau_is_accepted_with_its_kind_detected(tmp_path, axis):
     path = tmp_path / "radau.toml"
     path.write_text(RADAU2_TOML, encoding="utf-8")
-    tableau = with_order(load_tableau(path))
+    tableau = with_order(load_method_file(path))
     # Radau IIA 2 stages: order 3 (HW IV.5, Table 5.5 [mem]).
     assert tableau.kind == FULLY_IMPLICIT and tableau.order == 3
     report = check(axis, tableau, AXIS_TICK, order=False)
     assert report.passed
     dirk = tmp_path / "dirk.toml"
     dirk.write_text(DIRK_TOML, encoding="utf-8")
-    tableau = with_order(load_tableau(dirk))
+    tableau = with_order(load_method_file(dirk))
     # The 2-stage SDIRK with gamma = 1/2 + sqrt(3)/6 has order 3 (HW IV.6, Table 6.1 [mem]).
     assert tableau.kind == DIAGONALLY_IMPLICIT and tableau.order == 3
     assert check(axis, tableau, AXIS_TICK, precisions=("double",), order=False).passed

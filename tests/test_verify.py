@@ -7,13 +7,17 @@ import math
 import numpy as np
 import pytest
 import sympy as sp
+from click.testing import CliRunner
 
 from codegen.build import build
+from codegen.cli import main
 from codegen.methods import EXPLICIT, builtin, builtin_ids
-from codegen.model import Input, Parameter, State, define, load_model
+from codegen.model import Parameter, State, define, load_model
 from codegen.pipeline import generate
+from codegen.resources import examples_dir
 from codegen.run import run_c
 from codegen.verify import ORDER_TOLERANCE, check
+from codegen.verify import estimate as estimate_mod
 
 from conftest import DEMO_MODELS
 
@@ -137,7 +141,6 @@ def test_cross_check_catches_a_wrong_coefficient(heater):
     bad = replace(good, b=(sp.Rational(1, 6) + sp.Rational(1, 1000), sp.Rational(1, 3) -
                            sp.Rational(1, 1000), sp.Rational(1, 3), sp.Rational(1, 6)))
     from codegen import reference
-    from codegen.run import as_precision
     from codegen.verify import excitation
 
     model = heater
@@ -154,8 +157,92 @@ def test_cross_check_catches_a_wrong_coefficient(heater):
 
 def test_time_dependent_model_uses_stage_times():
     # x' = cos(t): the exact solution is sin(t) (analytic); RK4 integrates it with error O(h^4).
-    x, t = sp.Symbol("x", real=True), sp.Symbol("t", real=True)
+    t = sp.Symbol("t", real=True)
     model = define("clock", states=[State("x", initial=0.0, rate=sp.cos(t))])
     built = build(generate(model, builtin("rk4"), 0.01, precision="double"), model)
     run = run_c(built, model, np.zeros((300, 0)))
     np.testing.assert_allclose(run.xs[:, 0], np.sin(run.ts), atol=1e-10)
+
+
+# ---------------------------------------------------------------------------------------------
+# Run-time error estimate in the generated C
+# ---------------------------------------------------------------------------------------------
+
+def test_default_output_has_no_error_estimate_and_is_unchanged_by_the_option_off():
+    model = load_model(examples_dir() / "axis.toml")
+    plain = generate(model, builtin("dp5"), 1e-3, 1, "float")
+    off = generate(model, builtin("dp5"), 1e-3, 1, "float", error_estimate=False)
+    on = generate(model, builtin("dp5"), 1e-3, 1, "float", error_estimate=True)
+    assert plain.files == off.files
+    assert "advance_with_error" not in "".join(t for _, t in plain.files)
+    assert "axis_advance_with_error(axis_ctx_t *tw_ctx, axis_real_t *tw_err);" in on.text("axis.h")
+    assert "fabsf(" in on.text("axis.c") and "fabs(" not in on.text("axis.c").replace("fabsf(", "")
+
+
+@pytest.mark.parametrize("method_id", ["bs3", "dp5"])
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_c_error_estimate_equals_the_reference_embedded_difference(method_id, precision):
+    model = load_model(examples_dir() / "axis.toml")
+    result = estimate_mod.check_error_estimate(model, builtin(method_id), 2e-4, 2, precision, 60)
+    assert result.passed, result
+    assert result.largest_estimate > 0
+
+
+@pytest.mark.parametrize("method_id, embedded", [("bs3", 2), ("dp5", 4)])
+def test_c_error_estimate_scales_like_h_to_the_embedded_order_plus_one(method_id, embedded):
+    # The embedded solution has order p_hat, so its local error is C h^(p_hat + 1) (HNW I II.4
+    # [mem]); halving h divides the estimate by about 2^(p_hat + 1). Embedded orders: Bogacki &
+    # Shampine 1989, Dormand & Prince 1980 [mem].
+    model = load_model(examples_dir() / "axis.toml")
+    method = builtin(method_id)
+    x0 = (3.0, 120.0, 0.1)
+    estimates = []
+    for h in (4e-5, 2e-5, 1e-5):
+        built = build(generate(model, method, h, 1, "double", error_estimate=True), model)
+        ffi, lib = built.ffi, built.lib
+        ctx = ffi.new("axis_ctx_t *")
+        lib.axis_reset(ctx)
+        ctx.i, ctx.w, ctx.x, ctx.V = *x0, 6.0
+        err = ffi.new("axis_real_t *")
+        assert lib.axis_advance_with_error(ctx, err) == lib.AXIS_OK
+        _, expected = estimate_mod.embedded_estimate(model, method, 0.0, np.array(x0), np.array([6.0]), h)
+        assert math.isclose(err[0], expected, rel_tol=1e-6)
+        estimates.append(err[0])
+    slopes = np.log2(np.array(estimates[:-1]) / np.array(estimates[1:]))
+    assert np.all(np.abs(slopes - (embedded + 1)) < 0.2), slopes
+
+
+def test_error_estimate_needs_an_embedded_pair():
+    runner = CliRunner()
+    model = str(examples_dir() / "heater.toml")
+    result = runner.invoke(main, ["emit", model, "--method", "rk4", "--dt", "0.1",
+                                  "--out", "unused", "--error-estimate"])
+    assert result.exit_code == 1
+    assert "b_hat" in result.output and result.output.strip().count("\n") == 0
+
+
+# A Rosenbrock method built for the tests in the form of a method file (see test_analysis.py,
+# ORDER3_ROSENBROCK): order 3, with stage times (0, 1/2, 1) that differ from the row sums of its
+# alpha (0, 1/2, -1).
+ORDER3_ROSENBROCK_TOML = """kind = "rosenbrock"
+name = "3 stages, order 3 (test)"
+order = 3
+gamma = "1/2"
+alpha = [[0, 0, 0], ["1/2", 0, 0], [-2, 1, 0]]
+coupling = [[0, 0, 0], [2, 0, 0], ["164/35", "-82/35", 0]]
+b = ["-103/108", "43/54", "35/108"]
+"""
+
+
+def test_a_rosenbrock_method_file_checks_at_its_order_on_a_time_dependent_model(tmp_path):
+    # x' = -x + x^2/4 + cos(2t) uses time, so the C needs the derived stage times and time
+    # weights to reach order 3 (with the row sums of alpha as stage times it is order 1).
+    from codegen.methods import load_method_file
+
+    path = tmp_path / "ros3.toml"
+    path.write_text(ORDER3_ROSENBROCK_TOML, encoding="utf-8")
+    x, t = sp.Symbol("x", real=True), sp.Symbol("t", real=True)
+    model = define("td", [State("x", initial=1.0, rate=-x + x ** 2 / 4 + sp.cos(2 * t))])
+    report = check(model, load_method_file(path), 0.05, precisions=("double",), ticks=50)
+    assert report.passed, report
+    assert abs(report.order.measured - 3) <= ORDER_TOLERANCE

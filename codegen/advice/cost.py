@@ -6,19 +6,25 @@ counts for the other kinds.
 
 from __future__ import annotations
 
+import math
 from dataclasses import asdict, dataclass
 
 import sympy as sp
-
-import math
 
 from ..discretize import Block, StepProgram
 from ..methods import DIAGONALLY_IMPLICIT, EXACT, EXPLICIT, LINEARLY_IMPLICIT
 from ..model import Model
 
-# sympy's visual count_ops names -> our categories. Powers are small integer powers (written out
-# as multiplications by the printer) or calls; both count here as one 'call' to stay conservative.
-_CATEGORY = {"ADD": "add", "SUB": "add", "NEG": "add", "MUL": "mul", "DIV": "div", "POW": "call"}
+# sympy's visual count_ops names -> our categories. Integer powers are written out as
+# multiplications by the printer, other powers call pow(); both count here as one 'call' to stay
+# conservative. Square roots are counted as such (see count_expr).
+_CATEGORY = {"ADD": "add", "SUB": "add", "NEG": "add", "MUL": "mul", "DIV": "div", "POW": "call",
+             "FUNC_TW_SQRT": "sqrt", "FUNC_TW_POWER": "call"}
+# Stand-ins for powers while sympy counts: count_ops reports sqrt(x) = x**(1/2) as a POW plus a
+# DIV (the exponent 1/2) and 1/sqrt(x) with a NEG as well; the printer writes sqrt(x) and
+# 1/sqrt(x), one square root (and one division).
+_SQRT = sp.Function("TW_SQRT")
+_POWER = sp.Function("TW_POWER")
 
 
 @dataclass(frozen=True)
@@ -43,18 +49,38 @@ class OperationCount:
         return dict(asdict(self), total=self.total)
 
 
+def _as_printed(expr: sp.Expr) -> sp.Expr:
+    """expr with each power replaced by what the C printer writes for it (emit.printer):
+    x**(1/2) -> sqrt(x), x**(-1/2) -> 1/sqrt(x), x**(-n) -> 1/x**n, other non-integer powers ->
+    one pow() call on the base."""
+    if expr.is_Atom or not expr.args:
+        return expr
+    args = [_as_printed(a) for a in expr.args]
+    if not expr.is_Pow:
+        return expr.func(*args)
+    base, e = args
+    if e == sp.Rational(1, 2):
+        return _SQRT(base)
+    if e == -sp.Rational(1, 2):
+        return 1 / _SQRT(base)
+    if e.is_Integer:
+        return 1 / _POWER(base) if e < -1 else (1 / base if e == -1 else expr.func(base, e))
+    return _POWER(base) if e.is_number else _POWER(base, e)
+
+
 def count_expr(expr: sp.Expr) -> OperationCount:
+    """Floating-point operations of one expression as the C printer writes it.
+
+    Add, subtract and negate count as 'add'; square roots as 'sqrt'; other functions and powers
+    as 'call'.
+    """
     counts = {"add": 0, "mul": 0, "div": 0, "sqrt": 0, "call": 0}
-    visual = sp.count_ops(expr, visual=True)
+    visual = sp.count_ops(_as_printed(sp.sympify(expr)), visual=True)
     if visual == 0:
         return OperationCount()
     for term in sp.Add.make_args(visual):
         coeff, sym = term.as_coeff_Mul()
-        name = str(sym)
-        if name == "POW" and expr.has(sp.sqrt):
-            counts["sqrt"] += int(coeff)
-        else:
-            counts[_CATEGORY.get(name, "call")] += int(coeff)
+        counts[_CATEGORY.get(str(sym), "call")] += int(coeff)
     return OperationCount(**counts)
 
 

@@ -152,15 +152,3 @@ def decaying(values: np.ndarray) -> np.ndarray:
     """The eigenvalues a stable discretization must damp (Re lambda <= 0)."""
     return values[values.real <= 0]
 
-
-def _directions(values: np.ndarray) -> np.ndarray:
-    """One eigenvalue per ray direction, the largest: along a ray only the largest |lambda| binds."""
-    best: dict = {}
-    for v in values:
-        if v == 0:
-            continue
-        r = abs(v)
-        key = (round(v.real / r, 12), round(abs(v.imag) / r, 12))
-        if key not in best or r > abs(best[key]):
-            best[key] = v
-    return np.array(list(best.values()), dtype=complex)

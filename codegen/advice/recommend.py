@@ -13,9 +13,10 @@ Model -> Advice. The stages:
 Error measures are relative to each state's full scale: max(|low|, |high|) of its range, or the
 largest |x| of the simulated run for a state without a range.
 
-The simulation here is a numerical model of each method in numpy (explicit stages, Newton on the
-stage equations of implicit tableaux, the linear solves of Rosenbrock methods, the matrix
-exponential of the exact method); the generated C is checked against it by the tests.
+The simulation runs the steppers of the reference stage (reference.stepper: explicit stages,
+simplified Newton on the stage equations of implicit tableaux with J frozen as in the C, the
+linear solves of Rosenbrock methods, the matrix exponential of the exact method), evaluating the
+model with the math module on scalars; the generated C is checked against it by the tests.
 
 References
 ----------
@@ -32,14 +33,16 @@ from dataclasses import dataclass, field
 import numpy as np
 import sympy as sp
 
+from .. import reference
 from ..discretize import linear_parts as exact_linear_parts
 from ..errors import CheckError, ModelError, TickwrightError
-from ..methods import EXACT, EXPLICIT, LINEARLY_IMPLICIT, Tableau
-from ..methods import analysis
+from ..methods import EXACT, analysis
 from ..model import Model
+from ..reference.steppers import SIMPLIFIED_NEWTON
+from ..rounding import rounding_per_step
 from ..verify.scenario import excitation, state_scales
 from .cost import operations_per_step
-from .envelope import _directions, decaying, eigenvalues, envelope
+from .envelope import decaying, eigenvalues, envelope
 
 
 # Default accuracy target: 0.1 % of each state's full scale over the horizon (common practice, no
@@ -61,46 +64,6 @@ MAX_STEPS = 2000
 MAX_ATTEMPTS = 5
 # Tick periods are rounded down to these mantissas (times a power of ten), like firmware timers.
 NICE_MANTISSAS = (1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
-# Simplified Newton on implicit stages: converged when the update is below this relative size.
-NEWTON_TOL = 1e-12
-NEWTON_MAX = 50
-# Rounding units per stage and step, as the cross-check's rounding bound (verify.ULPS_PER_STAGE).
-ULPS_PER_STAGE = 4
-EPS = {"float": 2.0 ** -24, "double": 2.0 ** -53}
-
-
-# Geometric grid of h*|lambda| for the numerical pre-filter of the ray limits.
-_RAY_GRID = np.geomspace(1e-6, 1e4, 4001)
-def max_stable_dt(method, values, margin: float = 1.0) -> float:
-    """Largest h with every h*lambda in the stability region of any method kind (math.inf if none).
-
-    A numerical scan of each ray picks the eigenvalues that could bind (within 2 % of the smallest
-    scanned limit); the limit is then decided exactly on those rays as in analysis.max_stable_dt.
-    Growing modes (Re lambda > 0) must be filtered out by the caller (see `decaying`).
-    """
-    values = _directions(np.asarray(values, dtype=complex))
-    pq = analysis.stability_coefficients(method)
-    if pq is None or values.size == 0:
-        return math.inf
-    if analysis.analyse(method).a_stable and np.all(values.real <= 0):
-        return math.inf
-    region = analysis.analyse(method).stability.function
-    numeric = []
-    for lam in values:
-        z = _RAY_GRID * lam / abs(lam)
-        stable = analysis.in_stability_region(region, z)
-        bad = np.flatnonzero(~stable)
-        numeric.append(_RAY_GRID[bad[0]] / abs(lam) if bad.size else math.inf)
-    numeric = np.array(numeric)
-    finite = numeric[np.isfinite(numeric)]
-    bound = 1.02 * float(finite.min()) if finite.size else math.inf
-    candidates = [lam for lam, h in zip(values, numeric) if h <= bound or not np.isfinite(h)]
-    limit = math.inf
-    for lam in candidates[:64]:
-        h = analysis.ray_limit(pq, lam)
-        if h is not None:
-            limit = min(limit, h)
-    return limit * margin
 
 
 def nice_floor(dt: float) -> float:
@@ -118,165 +81,23 @@ def nice_floor(dt: float) -> float:
 
 
 # ---------------------------------------------------------------------------------------------
-# Numerical model of each method kind, for the error estimates
+# Error estimates, from the reference's steppers
 # ---------------------------------------------------------------------------------------------
 
-_FUNCTIONS: dict = {}
-
-
-def _model_functions(model: Model):
-    """f(t, x, u) and df/dx(t, x, u) as fast scalar functions at the parameter values.
-
-    Made once per model object; the same expressions as reference.rate_function, lambdified
-    with the math module on scalars (the advice runs many small steps).
-    """
-    entry = _FUNCTIONS.get(id(model))
-    if entry is not None and entry[0] is model:
-        return entry[1], entry[2]
-    values = {p.symbol: sp.Rational(repr(float(p.value))) for p in model.parameters}
-    args = [model.t, *model.x, *model.u]
-    rates = [e.xreplace(values) for e in model.f]
-    J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x)).xreplace(values)
-    f_fn = sp.lambdify(args, rates, modules="math")
-    j_fn = sp.lambdify(args, list(J), modules="math")
-    nx = model.nx
-
-    def f(t, x, u):
-        try:
-            return np.array(f_fn(t, *x, *u), dtype=np.float64)
-        except (OverflowError, ValueError, ZeroDivisionError):
-            return np.full(nx, np.nan)
-
-    def jac(t, x, u):
-        try:
-            return np.array(j_fn(t, *x, *u), dtype=np.float64).reshape(nx, nx)
-        except (OverflowError, ValueError, ZeroDivisionError):
-            return np.full((nx, nx), np.nan)
-
-    _FUNCTIONS[id(model)] = (model, f, jac)
-    return f, jac
-
-
-class Stepper:
-    """One step of a method on the model in float64: step(t, x, u, h) -> (x_next, local_err).
-
-    local_err is the embedded difference h * sum (b_j - b_hat_j) k_j when the method has an
-    embedded pair, else None. iterations counts the Newton iterations of implicit stages.
-    """
-
-    def __init__(self, model: Model, method):
-        self.model = model
-        self.method = method
-        self.kind = method.kind
-        self.f, self.jac = _model_functions(model)
-        self.iterations = 0
-        self.solves = 0
-        if isinstance(method, Tableau):
-            self.a, self.b, self.c = method.floats()
-            self.b_hat = None if method.b_hat is None else \
-                np.array([float(v) for v in method.b_hat])
-        elif self.kind == LINEARLY_IMPLICIT:
-            self.gamma = float(method.gamma)
-            self.alpha = np.array([[float(v) for v in r] for r in method.alpha])
-            self.coupling = np.array([[float(v) for v in r] for r in method.coupling])
-            self.b = np.array([float(v) for v in method.b])
-            self.time = np.array([float(v) for v in getattr(method, "time", [0] * len(self.b))])
-        elif self.kind == EXACT:
-            self.linear = linear_parts(model)
-            if self.linear is None:
-                raise CheckError(f"{model.source}: the exact method needs a model that is linear "
-                                 "in its states and inputs and does not use time")
-            self._cache: dict = {}
-
-    def step(self, t, x, u, h):
-        if self.kind == EXPLICIT:
-            return self._explicit(t, x, u, h)
-        if isinstance(self.method, Tableau):
-            return self._implicit(t, x, u, h)
-        if self.kind == LINEARLY_IMPLICIT:
-            return self._rosenbrock(t, x, u, h), None
-        return self._exact(x, u, h), None
-
-    def _explicit(self, t, x, u, h):
-        a, b, c = self.a, self.b, self.c
-        k = np.zeros((len(b), len(x)))
-        for i in range(len(b)):
-            y = x + h * (a[i, :i] @ k[:i]) if i else x
-            k[i] = self.f(t + c[i] * h, y, u)
-        err = None if self.b_hat is None else h * ((b - self.b_hat) @ k)
-        return x + h * (b @ k), err
-
-    def _implicit(self, t, x, u, h):
-        """Simplified Newton on all stages at once, Jacobian frozen at (t, x) (HW IV.8)."""
-        a, b, c = self.a, self.b, self.c
-        s, n = len(b), len(x)
-        J = self.jac(t, x, u)
-        if not np.all(np.isfinite(J)):
-            return np.full(n, np.nan), None
-        # Small systems (s * n of a few dozen): one inverse is cheaper than repeated LU solves.
-        W = np.linalg.inv(np.eye(s * n) - h * np.kron(a, J))
-        k = np.tile(self.f(t, x, u), (s, 1))
-        for it in range(NEWTON_MAX):
-            y = x + h * (a @ k)
-            g = k - np.array([self.f(t + c[i] * h, y[i], u) for i in range(s)])
-            dk = -(W @ g.reshape(-1)).reshape(s, n)
-            k = k + dk
-            self.iterations += 1
-            if np.max(np.abs(h * dk)) <= NEWTON_TOL * max(1.0, float(np.max(np.abs(x)))):
-                break
-        self.solves += 1
-        err = None if self.b_hat is None else h * ((b - self.b_hat) @ k)
-        return x + h * (b @ k), err
-
-    def _rosenbrock(self, t, x, u, h):
-        n = len(x)
-        J = self.jac(t, x, u)
-        if not np.all(np.isfinite(J)):
-            return np.full(n, np.nan)
-        W = np.linalg.inv(np.eye(n) - self.gamma * h * J)
-        dfdt = self._time_derivative(t, x, u)
-        k = []
-        for i in range(len(self.b)):
-            y = x + h * sum((self.alpha[i, j] * k[j] for j in range(i)), np.zeros(n))
-            rhs = self.f(t + h * self.alpha[i].sum(), y, u) + \
-                sum((self.coupling[i, j] * k[j] for j in range(i)), np.zeros(n)) + \
-                self.time[i] * h * dfdt
-            k.append(W @ rhs)
-        self.solves += 1
-        return x + h * sum(bi * ki for bi, ki in zip(self.b, k))
-
-    def _time_derivative(self, t, x, u):
-        if self.model.t not in set().union(*[e.free_symbols for e in self.model.f]):
-            return np.zeros(len(x))
-        d = 1e-7 * max(1.0, abs(t))
-        return (self.f(t + d, x, u) - self.f(t - d, x, u)) / (2 * d)
-
-    def _exact(self, x, u, h):
-        from scipy.linalg import expm
-
-        A, B, e = self.linear
-        key = h
-        if key not in self._cache:
-            n, m = A.shape[0], B.shape[1] + 1
-            block = np.zeros((n + m, n + m))
-            block[:n, :n] = A
-            block[:n, n:] = np.hstack([B, e[:, None]])
-            self._cache[key] = expm(block * h)
-        E = self._cache[key]
-        n = A.shape[0]
-        return E[:n, :n] @ x + E[:n, n:] @ np.concatenate([np.asarray(u, float), [1.0]])
-
-
-def linear_parts(model: Model):
-    """(A, B, e) as float arrays with f = A x + B u + e, or None when the exact method refuses
-    the model (the generator's own rule, implicit.linear_parts: nonlinear, time-dependent, or a
-    tunable parameter inside the matrices)."""
+def _exact_applies(model: Model) -> None:
+    """Raise CheckError, in the generator's words, when the exact method refuses the model."""
     try:
-        a, b, e = exact_linear_parts(model)
-    except ModelError:
-        return None
-    to = lambda M: np.array(M.tolist(), dtype=np.float64).reshape(M.shape)
-    return to(a), to(b), to(e).reshape(-1)
+        exact_linear_parts(model)
+    except ModelError as exc:
+        raise CheckError(str(exc).split(": ", 2)[-1]) from None
+
+
+def _stepper(model: Model, method):
+    """The reference's step of this method as the advice runs it: simplified Newton (its
+    iteration counts estimate the C's), the model evaluated on scalars."""
+    if method.kind == EXACT:
+        _exact_applies(model)
+    return reference.stepper(model, method, newton=SIMPLIFIED_NEWTON, scalar=True)
 
 
 @dataclass(frozen=True)
@@ -297,25 +118,6 @@ class Accuracy:
     newton_iterations: float | None = None
 
 
-def _simulate(stepper: Stepper, x0, inputs, dt, substeps=1):
-    n = len(inputs)
-    h = dt / substeps
-    xs = np.full((n + 1, len(x0)), np.nan)
-    xs[0] = x0
-    x = np.array(x0, float)
-    local = []
-    with np.errstate(all="ignore"):
-        for k in range(n):
-            for m in range(substeps):
-                x, err = stepper.step(k * dt + m * h, x, inputs[k], h)
-                if err is not None:
-                    local.append(np.abs(err))
-            if not np.all(np.isfinite(x)):
-                return xs, k, local
-            xs[k + 1] = x
-    return xs, n, local
-
-
 # Ticks at which the step-doubling local error is sampled (it costs three extra steps each).
 LOCAL_SAMPLES = 40
 
@@ -334,37 +136,33 @@ def accuracy(model: Model, method, dt: float, horizon: float, scales=None) -> Ac
     n = max(1, int(round(horizon / dt)))
     u = excitation(model, n)
     x0 = np.array([s.initial for s in model.states], float)
-    order = getattr(method, "order", None)
+    order = method.order
     factor = 1.0 if order is None else 2.0 ** order / (2.0 ** order - 1.0)
-    coarse = Stepper(model, method)
-    xs, done, local = _simulate(coarse, x0, u, dt)
-    if done < n:
+    step = _stepper(model, method)
+    coarse = reference.run(model, method, dt, 1, u, x0=x0, stepper=step)
+    if coarse.completed < n:
         return Accuracy(dt, n, math.inf, math.inf, "none", False)
-    fine = Stepper(model, method)
-    xf, done_f, _ = _simulate(fine, x0, u, dt, substeps=2)
+    fine = reference.run(model, method, dt, 2, u, x0=x0, stepper=step)
+    xs, xf = coarse.xs, fine.xs
     if scales is None:
         scales = state_scales(model, xf)
-    if done_f < n:
+    if fine.completed < n:
         return Accuracy(dt, n, math.inf, math.inf, "none", False)
     global_error = float(np.max(np.abs(xs - xf) / scales) * factor)
-    if local:
-        local_error = float(np.max(np.array(local) / scales))
+    if coarse.largest_error is not None:
+        local_error = float(np.max(coarse.largest_error / scales))
         local_by = "embedded pair"
     else:
         local_error, local_by = 0.0, "step doubling"
-        probe = Stepper(model, method)
-        for k in np.unique(np.linspace(0, n - 1, min(n, LOCAL_SAMPLES)).astype(int)):
-            one, _ = probe.step(k * dt, xs[k], u[k], dt)
-            half, _ = probe.step(k * dt, xs[k], u[k], dt / 2)
-            two, _ = probe.step(k * dt + dt / 2, half, u[k], dt / 2)
-            local_error = max(local_error, float(np.max(np.abs(one - two) / scales) * factor))
-    iterations = coarse.iterations / coarse.solves if coarse.solves and coarse.iterations else None
+        with np.errstate(all="ignore"):
+            for k in np.unique(np.linspace(0, n - 1, min(n, LOCAL_SAMPLES)).astype(int)):
+                one = step(k * dt, xs[k], u[k], dt).x
+                half = step(k * dt, xs[k], u[k], dt / 2).x
+                two = step(k * dt + dt / 2, half, u[k], dt / 2).x
+                local_error = max(local_error, float(np.max(np.abs(one - two) / scales) * factor))
+    iterations = coarse.newton_iterations / n if coarse.newton_iterations else None
     return Accuracy(dt, n, global_error, local_error, local_by, True, iterations)
 
-
-# ---------------------------------------------------------------------------------------------
-# Cost per simulated second
-# ---------------------------------------------------------------------------------------------
 
 # ---------------------------------------------------------------------------------------------
 # Float or double
@@ -373,14 +171,13 @@ def accuracy(model: Model, method, dt: float, horizon: float, scales=None) -> Ac
 def roundoff(method, steps: int, precision: str, bound: bool = False) -> float:
     """Accumulated round-off over `steps` steps, relative to full scale.
 
-    Each step adds at most ULPS_PER_STAGE * (stages + 1) rounding units of full scale (the budget
-    of the cross-check's rounding bound). bound=True adds them all (worst case, N units); the
+    Each step adds at most rounding.rounding_per_step of full scale (the budget of the
+    cross-check's rounding bound). bound=True adds them all (worst case, N units); the
     estimate lets independent roundings add like a random walk (sqrt(N); common practice, no
     source). On a decaying model, errors older than the horizon (two slow time constants) have
     faded, so the horizon's steps are the ones that add up.
     """
-    stages = max(1, getattr(method, "stages", 1))
-    per_step = ULPS_PER_STAGE * (stages + 1) * EPS[precision]
+    per_step = rounding_per_step(method.stages, precision)
     return per_step * (steps if bound else math.sqrt(steps))
 
 
@@ -482,7 +279,7 @@ def candidates() -> list:
 def _search_dt(model, method, dt_cap: float, horizon: float, tolerance: float, scales):
     """The largest nice tick <= dt_cap whose estimated global error meets the truncation share."""
     target = TRUNCATION_SHARE * tolerance
-    order = getattr(method, "order", None) or 1
+    order = method.order or 1
     dt = nice_floor(min(dt_cap, horizon / MIN_STEPS))
     best, last, tried = None, None, set()
     for _ in range(MAX_ATTEMPTS):
@@ -579,15 +376,12 @@ def _find(pool, method_id):
 
 def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> MethodAdvice:
     kind = m.kind
-    limit = max_stable_dt(m, damped)
+    limit = analysis.max_stable_dt(m, damped)
     note = ""
     acc = None
     try:
         if kind == EXACT:
-            try:
-                exact_linear_parts(model)
-            except ModelError as exc:  # the generator would refuse it: say why, in its words
-                raise CheckError(str(exc).split(": ", 2)[-1]) from None
+            _exact_applies(model)  # the generator would refuse it: say why, in its words
         if limit == 0:
             raise CheckError("no step size is stable: an eigenvalue lies outside the region at "
                              "every h (for example a lightly damped mode and an explicit method "
@@ -612,9 +406,8 @@ def _advise_method(model, m, damped, horizon, tolerance, margin, scales) -> Meth
     except TickwrightError as exc:  # pragma: no cover - every kind has an estimate
         ops, cost_note = 0, str(exc)
     report = analysis.analyse(m)
-    row_acc = acc if (acc is not None and dt is not None) else acc
     return MethodAdvice(id=m.id, name=m.name, kind=kind, order=report.order, max_stable_dt=limit,
-                        dt=dt, accuracy=row_acc, ops_per_step=ops, cost_note=cost_note, note=note)
+                        dt=dt, accuracy=acc, ops_per_step=ops, cost_note=cost_note, note=note)
 
 
 def _requested(model, method, row, dt, damped, horizon, tolerance, margin, warnings) -> dict:

@@ -3,7 +3,8 @@
 - ``types``: the method protocol and its three implementations (Butcher tableau, Rosenbrock
   method, exact zero-order hold), each with a declared kind;
 - ``data``: every built-in method and its source;
-- ``values``: exact numbers from text; ``files``: users' method files;
+- ``values``: exact numbers from text; ``files``: methods from data and users' method files
+  (tableaux and Rosenbrock methods);
 - ``analysis``: order conditions (rooted trees), stability functions, A-/L-stability and
   stability limits of any method.
 """
@@ -14,7 +15,8 @@ import difflib
 
 from ..errors import MethodError
 from .data import ALIASES, EXACT_METHODS, EXPLICIT_TABLEAUX, IMPLICIT_TABLEAUX, ROSENBROCK_METHODS
-from .files import load_tableau, tableau_from_data, with_order
+from .files import (load_method_file, method_from_data, rosenbrock_from_data, tableau_from_data,
+                    tolerance_note, with_order)
 from .types import (DECIMAL_DATA_TOL, DIAGONALLY_IMPLICIT, EXACT, EXPLICIT, FULLY_IMPLICIT, KINDS,
                     LINEARLY_IMPLICIT, NEWTON_KINDS, ExactDiscretization, LinearlyImplicit, Method,
                     Tableau)
@@ -23,7 +25,8 @@ from .values import exact
 __all__ = ["DECIMAL_DATA_TOL", "DIAGONALLY_IMPLICIT", "EXACT", "EXPLICIT", "FULLY_IMPLICIT",
            "KINDS", "LINEARLY_IMPLICIT", "NEWTON_KINDS", "ExactDiscretization",
            "LinearlyImplicit", "Method", "Tableau", "builtin", "builtin_ids", "exact",
-           "load_tableau", "tableau_from_data", "with_order"]
+           "load_method_file", "method_from_data", "rosenbrock_from_data", "tableau_from_data",
+           "tolerance_note", "with_order"]
 
 # Every built-in tableau, explicit ones first, in the order they are listed.
 BUILTIN_TABLEAUX: dict[str, dict] = {**EXPLICIT_TABLEAUX, **IMPLICIT_TABLEAUX}
@@ -36,17 +39,6 @@ def builtin_ids() -> list[str]:
     return list(BUILTIN_TABLEAUX) + list(ROSENBROCK_METHODS) + list(EXACT_METHODS)
 
 
-def _rosenbrock(key: str) -> LinearlyImplicit:
-    data = ROSENBROCK_METHODS[key]
-    where = f"built-in method {key}"
-    rows = lambda name: tuple(tuple(exact(v, where, name) for v in r) for r in data[name])
-    vector = lambda name: tuple(exact(v, where, name) for v in data[name])
-    return LinearlyImplicit(
-        id=key, name=data["name"], gamma=exact(data["gamma"], where, "gamma"),
-        alpha=rows("alpha"), coupling=rows("coupling"), b=vector("b"), time=vector("time"),
-        order=data["order"], source=data["source"])
-
-
 def builtin(method_id: str) -> Method:
     """The built-in method with this id (or alias): a Tableau, LinearlyImplicit or exact method."""
     key = ALIASES.get(method_id, method_id)
@@ -56,7 +48,8 @@ def builtin(method_id: str) -> Method:
         raise MethodError(f"--method: unknown method '{method_id}' ({fix})")
     if key not in _CACHE:
         if key in ROSENBROCK_METHODS:
-            _CACHE[key] = _rosenbrock(key)
+            _CACHE[key] = rosenbrock_from_data(ROSENBROCK_METHODS[key], f"built-in method {key}",
+                                               key)
         elif key in EXACT_METHODS:
             _CACHE[key] = ExactDiscretization(id=key, **EXACT_METHODS[key])
         else:

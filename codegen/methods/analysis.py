@@ -1,9 +1,11 @@
-"""Properties of a Runge-Kutta method from its tableau: order (rooted trees) and linear stability.
+"""Properties of a method from its data: order (rooted trees for tableaux, the Rosenbrock
+conditions up to order 3) and linear stability.
 
-Tableau -> MethodReport. Everything that decides a yes/no question (is a condition satisfied, is
-the method A-stable, where does a stability interval end) is decided in exact arithmetic; floating
-point (mpmath at 50 digits) is only a fast filter in front of the exact test and the final rounding
-of a limit to a float.
+Method -> MethodReport. Everything that decides a yes/no question (is a condition satisfied, is
+the method A-stable, where does a stability interval end) is decided in exact arithmetic (order
+conditions of data given in decimals: to the method's tolerance); floating point (mpmath at 50
+digits) is only a fast filter in front of the exact test and the final rounding of a limit to a
+float.
 
 References
 ----------
@@ -26,7 +28,7 @@ import numpy as np
 import sympy as sp
 
 from ..errors import MethodError
-from .types import EXACT, LINEARLY_IMPLICIT, LinearlyImplicit, Tableau
+from .types import EXACT, LINEARLY_IMPLICIT, LinearlyImplicit, Tableau, unit_lower_inverse
 
 # The variable of the stability function, z = h * lambda.
 Z = sp.Symbol("z")
@@ -236,6 +238,80 @@ def order_of(tableau: Tableau, weights=None, max_order: int = 8) -> int:
     return max_order
 
 
+def hairer_wanner_form(method: LinearlyImplicit, weights=None) -> tuple[list, list, list]:
+    """(Gamma, alpha, b) of a Rosenbrock method in the form of Hairer & Wanner, exact.
+
+    Our form (I - gamma h J) k_i = f(y + h sum_j alpha_ij k_j) + sum_j coupling_ij k_j,
+    y1 = y + h sum_i b_i k_i, is theirs, (I - gamma h J) K_i = h f(y + sum_j alpha_ij K_j)
+    + h J sum_{j<i} gamma_ij K_j, y1 = y + sum_i b_i K_i, with h k = Gamma K / gamma: their
+    Gamma = gamma (I - coupling)^-1 (diagonal gamma), their alpha = alpha (I - coupling)^-1 and
+    their b = b (I - coupling)^-1. weights replaces b (pass b_hat for the embedded solution).
+
+    References
+    ----------
+    HW, section IV.7, the transformation to the form with the matrix C (from memory).
+    """
+    s = method.stages
+    inv = unit_lower_inverse(method.coupling)
+    b = method.b if weights is None else tuple(weights)
+    times = lambda row: [sp.expand(sum((row[k] * inv[k][j] for k in range(s)), sp.Integer(0)))
+                         for j in range(s)]
+    gamma = [[sp.expand(method.gamma * v) for v in row] for row in inv]
+    return gamma, [times(row) for row in method.alpha], times(b)
+
+
+def rosenbrock_residuals(method: LinearlyImplicit, weights=None) -> list[tuple[int, sp.Expr]]:
+    """(order, residual) of each order condition of a Rosenbrock method up to order 3, exact.
+
+    With beta_jk = alpha_jk + gamma_jk below the diagonal, beta_j = sum_k beta_jk and
+    alpha_j = sum_k alpha_jk (Hairer & Wanner's coefficients, hairer_wanner_form):
+    order 1: sum b_j = 1; order 2: sum b_j beta_j = 1/2 - gamma; order 3: sum b_j alpha_j^2 = 1/3
+    and sum b_j beta_jk beta_k = 1/6 - gamma + gamma^2.
+
+    References
+    ----------
+    HW, section IV.7, Table 7.1 (from memory; tests/test_analysis.py measures the convergence
+    orders these conditions predict).
+    """
+    big_gamma, alpha, b = hairer_wanner_form(method, weights)
+    s, g = method.stages, method.gamma
+    beta = [[alpha[j][k] + big_gamma[j][k] for k in range(j)] for j in range(s)]
+    beta_sum = [sum(row, sp.Integer(0)) for row in beta]
+    alpha_sum = [sum(row, sp.Integer(0)) for row in alpha]
+    half, third, sixth = sp.Rational(1, 2), sp.Rational(1, 3), sp.Rational(1, 6)
+    return [
+        (1, sum(b, sp.Integer(0)) - 1),
+        (2, sum(b[j] * beta_sum[j] for j in range(s)) - (half - g)),
+        (3, sum(b[j] * alpha_sum[j] ** 2 for j in range(s)) - third),
+        (3, sum(b[j] * beta[j][k] * beta_sum[k] for j in range(s) for k in range(j))
+         - (sixth - g + g ** 2)),
+    ]
+
+
+def rosenbrock_order(method: LinearlyImplicit, weights=None) -> int:
+    """The largest p <= 3 such that every Rosenbrock order condition of order <= p holds.
+
+    Decided at the method's own tolerance (exactly for exact data), as order_of does for
+    tableaux; 0 if even the order-1 condition fails. Conditions above order 3 are not checked:
+    a method of higher order reports 3.
+
+    References
+    ----------
+    HW, section IV.7, Table 7.1 (from memory).
+    """
+    if weights is not None and len(weights) != method.stages:
+        raise MethodError(f"{method.id}: weights: must have {method.stages} entries")
+    tol = method.tolerance
+    found = 3
+    for order, residual in rosenbrock_residuals(method, weights):
+        if order > found:
+            break
+        held = (abs(float(sp.N(residual, _DIGITS))) <= tol) if tol > 0 else _is_zero(residual)
+        if not held:
+            found = order - 1
+    return found
+
+
 # ---------------------------------------------------------------------------------------------
 # Exact numbers: zero test, sign, simplification
 # ---------------------------------------------------------------------------------------------
@@ -437,12 +513,13 @@ def _evaluate(coeffs: list, point: sp.Rational) -> sp.Expr:
     return sum(c * point ** k for k, c in enumerate(coeffs))
 
 
-def _first_sign_loss(coeffs: list) -> sp.Rational | None:
+def _first_sign_loss(coeffs: list, upto: sp.Rational | None = None) -> sp.Rational | None:
     """Where f(t) = sum coeffs[k] t^k first stops being >= 0 for t > 0, exactly located.
 
     Returns 0 if f < 0 just right of 0, None if f >= 0 on all of (0, inf), otherwise the root t*
-    (a rational within 1e-40 of it) with f >= 0 on [0, t*] and f < 0 just after it. Roots where f touches
-    zero without changing sign (even multiplicity) do not end the interval.
+    (a rational within 1e-40 of it) with f >= 0 on [0, t*] and f < 0 just after it. Roots where f
+    touches zero without changing sign (even multiplicity) do not end the interval. With upto,
+    None also when f has no root at all in (0, upto] (a Sturm count, cheaper than locating one).
     """
     coeffs = _trim([_clean(c) for c in coeffs])
     low = next((k for k, c in enumerate(coeffs) if c != 0), None)
@@ -453,7 +530,11 @@ def _first_sign_loss(coeffs: list) -> sp.Rational | None:
         return sp.Integer(0)
     if len(coeffs) == 1:
         return None
+    if upto is not None and _proven_positive(coeffs, upto):
+        return None
     shadow = _rational_shadow(coeffs)
+    if upto is not None and shadow.count_roots(0, upto) == 0:
+        return None  # f(0) > 0 and no root of f (a root of its shadow) up to upto
     intervals = [iv for iv, _ in shadow.intervals(inf=0) if iv[1] > 0]
     # Sample f between isolating intervals, where it cannot vanish (a root of f is a root of its
     # shadow), so each sign is exact; the sign after the last root is that of the leading term.
@@ -467,6 +548,46 @@ def _first_sign_loss(coeffs: list) -> sp.Rational | None:
             root_left, root_right = shadow.refine_root(left, right, eps=sp.Rational(1, 10 ** 40))
             return (sp.Rational(root_left) + sp.Rational(root_right)) / 2
     return None
+
+
+# Floating-point proof that a polynomial stays positive: subintervals to start with, halving
+# rounds for those not yet proven, and the most subintervals before the exact count takes over.
+_PROOF_PIECES = 64
+_PROOF_ROUNDS = 10
+_PROOF_MAX_PIECES = 4096
+# A float lower bound counts only when it exceeds this fraction of sum |c_k| t^k: far above the
+# rounding of the coefficients (1e-16 relative) and of the float sums (degree * 1e-16).
+_PROOF_MARGIN = 1e-9
+
+
+def _proven_positive(coeffs: list, upto) -> bool:
+    """True when f(t) = sum coeffs[k] t^k > 0 on all of [0, upto] is proven in floating point.
+
+    On [a, b] with 0 <= a, each term c_k t^k is at least c_k a^k (c_k > 0) or c_k b^k (c_k < 0),
+    so their sum bounds f from below; a piece is proven when that bound exceeds _PROOF_MARGIN
+    times sum |c_k| b^k. False means only "not proven" (a root, a touch, or too close to tell):
+    the caller then counts the roots exactly.
+    """
+    c = np.array([float(sp.N(v, 20)) for v in coeffs])
+    if not np.all(np.isfinite(c)):
+        return False
+    k = np.arange(len(c))
+    edges = np.linspace(0.0, float(upto), _PROOF_PIECES + 1)
+    a, b = edges[:-1], edges[1:]
+    for _ in range(_PROOF_ROUNDS):
+        with np.errstate(over="ignore", invalid="ignore"):
+            ta, tb = a[:, None] ** k, b[:, None] ** k
+            low = np.where(c > 0, c * ta, c * tb).sum(axis=1)
+            scale = (np.abs(c) * tb).sum(axis=1)
+        open_ = ~(np.isfinite(low) & np.isfinite(scale) & (low > _PROOF_MARGIN * scale))
+        if not open_.any():
+            return True
+        a, b = a[open_], b[open_]
+        if 2 * a.size > _PROOF_MAX_PIECES:
+            return False
+        mid = (a + b) / 2
+        a, b = np.concatenate([a, mid]), np.concatenate([mid, b])
+    return False
 
 
 def _separated(shadow: sp.Poly, intervals: list) -> list:
@@ -550,7 +671,8 @@ class StabilityReport:
 class MethodReport:
     """What the analysis found about one method; stability fields are forwarded for convenience.
 
-    order is None for the exact (zero-order-hold) propagator, which has no finite order.
+    order is None for the exact (zero-order-hold) propagator, which has no finite order;
+    tolerance is the one the order conditions were decided to (0: exactly).
     """
 
     id: str
@@ -561,6 +683,7 @@ class MethodReport:
     kind: str
     stability: StabilityReport
     source: str
+    tolerance: float = 0.0
 
     @property
     def a_stable(self) -> bool:
@@ -585,7 +708,7 @@ class MethodReport:
     def as_dict(self) -> dict:
         return dict(id=self.id, name=self.name, stages=self.stages, order=self.order,
                     embedded_order=self.embedded_order, kind=self.kind, source=self.source,
-                    **self.stability.as_dict())
+                    tolerance=self.tolerance, **self.stability.as_dict())
 
 
 def _hurwitz_right(q: list) -> bool:
@@ -656,8 +779,8 @@ def analyse(method) -> MethodReport:
     """Order, embedded order, kind and linear stability of any method (cached per method).
 
     Tableaux: order conditions at the tableau's own tolerance and the stability function;
-    Rosenbrock methods: their stated order and stability function; the exact discretization:
-    R = exp(z), no finite order.
+    Rosenbrock methods: their order conditions up to order 3 at the method's own tolerance and
+    their stability function; the exact discretization: R = exp(z), no finite order.
 
     References
     ----------
@@ -671,13 +794,13 @@ def _analyse(method) -> MethodReport:
     if method.kind == EXACT:
         return analyse_exact(method)
     if method.kind == LINEARLY_IMPLICIT:
-        return MethodReport(method.id, method.name, method.stages, method.order,
-                            method.embedded_order, method.kind,
-                            rosenbrock_stability_report(method), method.source)
-    order = order_of(method)
-    embedded = order_of(method, method.b_hat) if method.b_hat is not None else None
+        order_fn, stability = rosenbrock_order, rosenbrock_stability_report(method)
+    else:
+        order_fn, stability = order_of, stability_report(method)
+    order = order_fn(method)
+    embedded = order_fn(method, method.b_hat) if method.b_hat is not None else None
     return MethodReport(method.id, method.name, method.stages, order, embedded, method.kind,
-                        stability_report(method), method.source)
+                        stability, method.source, method.tolerance)
 
 
 def analyse_exact(method) -> MethodReport:
@@ -700,32 +823,41 @@ def analyse_exact(method) -> MethodReport:
 # Numerical use of the stability function
 # ---------------------------------------------------------------------------------------------
 
-def _float_coefficients(tableau_or_r):
-    if isinstance(tableau_or_r, Tableau):
-        p, q = _tableau_polynomials(tableau_or_r)
-    elif isinstance(tableau_or_r, tuple) and len(tableau_or_r) == 2:
-        p, q = _coeffs(tableau_or_r[0]), _coeffs(tableau_or_r[1])
-    else:
-        num, den = sp.fraction(sp.cancel(sp.sympify(tableau_or_r)))
+def _float_coefficients(method_or_r):
+    """(P, Q) as float arrays (low to high) of a method of any kind, a rational expression in Z
+    or a pair (P, Q); None for R = exp(z)."""
+    if isinstance(method_or_r, tuple) and len(method_or_r) == 2:
+        p, q = _coeffs(method_or_r[0]), _coeffs(method_or_r[1])
+    elif isinstance(method_or_r, sp.Basic):
+        if method_or_r == sp.exp(Z):
+            return None
+        num, den = sp.fraction(sp.cancel(sp.sympify(method_or_r)))
         if not (num.is_polynomial(Z) and den.is_polynomial(Z)):
-            raise MethodError(f"stability function {tableau_or_r} is not rational in z")
+            raise MethodError(f"stability function {method_or_r} is not rational in z")
         p, q = _coeffs(num), _coeffs(den)
+    else:
+        coefficients = stability_coefficients(method_or_r)
+        if coefficients is None:
+            return None
+        p, q = coefficients
     return (np.array([float(c) for c in p]), np.array([float(c) for c in q]))
 
 
-def in_stability_region(tableau_or_r, z) -> np.ndarray:
+def in_stability_region(method_or_r, z) -> np.ndarray:
     """Elementwise |R(z)| <= 1 (with 1e-12 relative slack for boundary points), as a bool array.
 
-    tableau_or_r is a Tableau, a rational sympy expression in Z, a pair (P, Q), or sp.exp(Z).
+    method_or_r is a method of any kind, a rational sympy expression in Z, a pair (P, Q), or
+    sp.exp(Z) (stable exactly where Re z <= 0).
 
     References
     ----------
     HW, section IV.2, definition of the stability domain (from memory).
     """
     z = np.asarray(z, dtype=complex)
-    if isinstance(tableau_or_r, sp.Expr) and tableau_or_r == sp.exp(Z):
+    coefficients = _float_coefficients(method_or_r)
+    if coefficients is None:
         return z.real <= 0
-    p, q = _float_coefficients(tableau_or_r)
+    p, q = coefficients
     num = np.abs(np.polynomial.polynomial.polyval(z, p))
     den = np.abs(np.polynomial.polynomial.polyval(z, q))
     return num <= (1 + _REGION_SLACK) * den
@@ -744,49 +876,93 @@ def stability_coefficients(method) -> tuple[tuple, tuple] | None:
     return _tableau_polynomials(method)
 
 
-def ray_limit(coefficients: tuple[tuple, tuple], lam: complex) -> float | None:
+def ray_limit(coefficients: tuple[tuple, tuple], lam: complex,
+              upto: float | None = None) -> float | None:
     """The first h > 0 at which h*lambda leaves the stability region of R = P/Q, or None.
 
     Found exactly as the first sign change of |Q(h lambda)|^2 - |P(h lambda)|^2 in h (a touch
-    without crossing does not count).
+    without crossing does not count). With upto, None also when the ray provably stays in the
+    region up to h = upto.
     """
     p, q = coefficients
+    bound = None if upto is None else sp.Rational(float(upto))
     h = _first_sign_loss(_ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
-                                         sp.Rational(abs(float(lam.imag)))))
+                                         sp.Rational(abs(float(lam.imag)))), bound)
     return None if h is None else float(h)
+
+
+def ray_directions(eigenvalues) -> np.ndarray:
+    """One eigenvalue per ray direction, the largest: along a ray only the largest |lambda| binds.
+
+    The limit on a ray is t*/|lambda| with t* fixed by the direction, so the largest |lambda| of
+    a direction gives the smallest h. Conjugates share a direction (R has real coefficients);
+    directions are compared to 12 digits; zero eigenvalues have none (they never bind).
+    """
+    best: dict = {}
+    for v in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
+        r = abs(v)
+        if r == 0:
+            continue
+        key = (round(v.real / r, 12), round(abs(v.imag) / r, 12))
+        if key not in best or r > abs(best[key]):
+            best[key] = complex(v.real, abs(v.imag))
+    return np.array([best[k] for k in sorted(best)], dtype=complex)
 
 
 def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     """The largest h with h*lambda in the stability region for every eigenvalue, times margin.
 
     method: a Tableau, a linearly implicit method, or the exact discretization (always stable
-    for decaying modes). eigenvalues: complex values (1/s); the result is in seconds. For each
-    lambda != 0 the ray h*lambda, h >= 0, is followed outward from 0 to the first point where
-    |R| = 1 is crossed (ray_limit). margin in (0, 1] is a safety factor. Returns math.inf if
-    every ray stays stable, 0.0 if some h*lambda leaves the region at once (for example
-    Re lambda > 0, or an explicit method with lambda on the imaginary axis).
+    for decaying modes). eigenvalues: complex values (1/s), one or a whole envelope of them; the
+    result is in seconds. The eigenvalues are reduced to one per ray direction (ray_directions);
+    an A-stable method is unbounded when every Re lambda <= 0; otherwise each ray h*lambda,
+    h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed, exactly
+    (ray_limit): the most restrictive ray by a numerical scan first, every other ray only as far
+    as the limit found so far (an exact root count), so the scan decides nothing. margin in (0, 1] is a safety factor. Returns math.inf if every ray stays stable,
+    0.0 if some h*lambda leaves the region at once (for example Re lambda > 0, or an explicit
+    method with lambda on the imaginary axis).
 
     References
     ----------
-    HW, section IV.2 (stability domain); common practice, no source (step size from eigenvalues).
+    HW, section IV.2 (stability domain), IV.3 (A-stability); common practice, no source (step
+    size from eigenvalues).
     """
     if not 0 < margin <= 1:
         raise ValueError("margin must be in (0, 1]")
+    values = np.atleast_1d(np.asarray(eigenvalues, dtype=complex))
+    bad = values[~np.isfinite(values)]
+    if bad.size:
+        raise ValueError(f"eigenvalue {bad[0]} is not finite")
+    directions = ray_directions(values)
     coefficients = stability_coefficients(method)
+    if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
+        return 0.0 if np.any(directions.real > 0) else math.inf
+    if directions.size == 0 or (np.all(directions.real <= 0) and analyse(method).a_stable):
+        return math.inf
+    # The most restrictive ray first (a numerical scan only orders the work): every later ray
+    # then needs only the exact proof that it stays stable up to the limit found so far.
     limit = math.inf
-    seen = set()
-    for lam in np.atleast_1d(np.asarray(eigenvalues, dtype=complex)):
-        if not np.isfinite(lam):
-            raise ValueError(f"eigenvalue {lam} is not finite")
-        key = (float(lam.real), abs(float(lam.imag)))  # R has real coefficients: conjugates agree
-        if key == (0.0, 0.0) or key in seen:
-            continue
-        seen.add(key)
-        if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
-            if key[0] > 0:
-                return 0.0
-            continue
-        h = ray_limit(coefficients, complex(*key))
+    for lam in directions[np.argsort(_scanned_limits(coefficients, directions), kind="stable")]:
+        h = ray_limit(coefficients, lam, None if math.isinf(limit) else limit)
         if h is not None:
             limit = min(limit, h)
     return limit * margin
+
+
+# Geometric grid of h*|lambda| for the numerical scan that orders the rays (0.6 % steps).
+_RAY_GRID = np.geomspace(1e-6, 1e4, 4001)
+
+
+def _scanned_limits(coefficients, directions: np.ndarray) -> np.ndarray:
+    """For each ray, the first grid point of h outside |R| <= 1 (inf if none): an estimate."""
+    p, q = (np.array([float(c) for c in v]) for v in coefficients)
+    out = np.full(directions.size, math.inf)
+    for k, lam in enumerate(directions):
+        z = _RAY_GRID * lam / abs(lam)
+        with np.errstate(all="ignore"):
+            outside = np.abs(np.polynomial.polynomial.polyval(z, p)) > \
+                (1 + _REGION_SLACK) * np.abs(np.polynomial.polynomial.polyval(z, q))
+        bad = np.flatnonzero(outside)
+        if bad.size:
+            out[k] = _RAY_GRID[bad[0]] / abs(lam)
+    return out

@@ -1,8 +1,9 @@
 """The method types: one protocol for every kind of method the generator knows.
 
 Every method has an ``id``, a ``name``, a declared ``kind``, ``stages``, ``order`` (None when the
-method has no finite order), ``embedded_order``, ``b_hat`` and ``source`` (the full published
-citation). Three classes implement it:
+method has no finite order), ``embedded_order``, ``b_hat``, ``tolerance`` (0 for exact data, else
+the tolerance its conditions are decided to) and ``source`` (the full published citation). Three
+classes implement it:
 
 - ``Tableau``: a Runge-Kutta method given by its Butcher tableau (s, A, b, c); its kind
   (explicit, diagonally implicit, fully implicit) is the shape of its matrix A;
@@ -43,6 +44,9 @@ class Method(Protocol):
     id: str
     name: str
     source: str
+    b_hat: tuple[sp.Expr, ...] | None
+    embedded_order: int | None
+    tolerance: float
 
     @property
     def kind(self) -> str: ...
@@ -59,10 +63,24 @@ class Method(Protocol):
 
 def negligible(value: sp.Expr, tolerance: float) -> bool:
     """Exactly zero (tolerance 0), or at most tolerance in magnitude (evaluated at 30 digits)."""
+    value = sp.sympify(value)
     value = sp.nsimplify(value) if value.is_Float else value
     if value == 0:
         return True
-    return tolerance > 0 and abs(float(sp.N(value, 30))) <= tolerance
+    if tolerance > 0:
+        return abs(float(sp.N(value, 30))) <= tolerance
+    # Radicals can cancel only after expansion: (1 - sqrt(2)/2) + sqrt(2)/2 - 1 is zero.
+    return not value.is_Rational and sp.radsimp(sp.expand(value)) == 0
+
+
+def unit_lower_inverse(m: tuple[tuple[sp.Expr, ...], ...]) -> list[list[sp.Expr]]:
+    """(I - m)^-1 for a strictly lower triangular m, exact, by forward substitution."""
+    s = len(m)
+    inv = [[sp.Integer(1 if i == j else 0) for j in range(s)] for i in range(s)]
+    for i in range(s):
+        for j in range(i):
+            inv[i][j] = sp.expand(sum((m[i][k] * inv[k][j] for k in range(j, i)), sp.Integer(0)))
+    return inv
 
 
 @dataclass(frozen=True)
@@ -145,8 +163,12 @@ class LinearlyImplicit:
 
     (I - gamma h J) k_i = f(t + c_i h, y + h sum_j alpha_ij k_j) + sum_j coupling_ij k_j
                           + time_i h df/dt,
-    y_next = y + h sum_i b_i k_i, with c_i = sum_j alpha_ij and J = df/dx at (t, y).
-    b_hat (optional) are the weights of an embedded solution for a local error estimate.
+    y_next = y + h sum_i b_i k_i, with J = df/dx at (t, y). alpha and coupling are strictly lower
+    triangular. In the form of Hairer & Wanner (their Gamma = gamma (I - coupling)^-1, their alpha
+    = alpha (I - coupling)^-1) the stage times c_i are the row sums of their alpha and the time
+    weights time_i the row sums of their Gamma; both are derived here, not given.
+    b_hat (optional) are the weights of an embedded solution for a local error estimate;
+    tolerance is 0 for exact data, else the tolerance the order conditions are decided to.
 
     References
     ----------
@@ -160,11 +182,11 @@ class LinearlyImplicit:
     alpha: tuple[tuple[sp.Expr, ...], ...]
     coupling: tuple[tuple[sp.Expr, ...], ...]
     b: tuple[sp.Expr, ...]
-    time: tuple[sp.Expr, ...]
     order: int | None = None
     source: str = ""
     b_hat: tuple[sp.Expr, ...] | None = None
     embedded_order: int | None = None
+    tolerance: float = 0.0
     origin: str = field(default="", compare=False)
     digest: str = field(default="", compare=False)
 
@@ -177,12 +199,10 @@ class LinearlyImplicit:
             if len(rows) != s or any(len(r) != s for r in rows) or \
                     any(rows[i][j] != 0 for i in range(s) for j in range(i, s)):
                 raise MethodError(located(where, item, f"must be {s} x {s} and strictly lower "
-                                          "triangular"))
-        if len(self.time) != s:
-            raise MethodError(located(where, "time", f"must have {s} entries to match b"))
+                                          "triangular (zeros on and above the diagonal)"))
         if self.b_hat is not None and len(self.b_hat) != s:
             raise MethodError(located(where, "b_hat", f"must have {s} entries to match b"))
-        if not negligible(self.gamma, 0.0) and not self.gamma.is_positive:
+        if negligible(self.gamma, 0.0) or not self.gamma.is_positive:
             raise MethodError(located(where, "gamma", "must be positive"))
         if self.order is not None and self.order < 1:
             raise MethodError(located(where, "order", "must be a positive whole number"))
@@ -195,7 +215,17 @@ class LinearlyImplicit:
 
     @property
     def c(self) -> tuple[sp.Expr, ...]:
-        return tuple(sum(row, sp.Integer(0)) for row in self.alpha)
+        """Stage times: row sums of alpha (I - coupling)^-1 (Hairer & Wanner's alpha_i)."""
+        inv = unit_lower_inverse(self.coupling)
+        s = self.stages
+        return tuple(sp.expand(sum((self.alpha[i][k] * inv[k][j] for k in range(s)
+                                    for j in range(s)), sp.Integer(0))) for i in range(s))
+
+    @property
+    def time(self) -> tuple[sp.Expr, ...]:
+        """Weights of h df/dt: gamma times the row sums of (I - coupling)^-1 (their gamma_i)."""
+        inv = unit_lower_inverse(self.coupling)
+        return tuple(sp.expand(self.gamma * sum(row, sp.Integer(0))) for row in inv)
 
     @property
     def is_explicit(self) -> bool:
@@ -218,6 +248,7 @@ class ExactDiscretization:
     order = None
     embedded_order = None
     b_hat = None
+    tolerance = 0.0
     stages = 1  # one application of the propagator per step
 
     @property

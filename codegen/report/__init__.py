@@ -17,7 +17,8 @@ from ..verify import CheckReport
 class CheckOutcome:
     """The check report plus what the options added: error estimates, target runs, pictures.
 
-    method_name: the method's full name (the report carries its id); estimates:
+    method_name: the method's full name (the report carries its id); method_note: how its
+    conditions were decided when its data are decimals (methods.tolerance_note), else ''; estimates:
     verify.estimate.EstimateCheck per precision; targets: targets.TargetReport per target and
     precision; pictures: the files written.
     """
@@ -27,6 +28,7 @@ class CheckOutcome:
     estimates: tuple = ()
     targets: tuple = ()
     pictures: tuple[Path, ...] = ()
+    method_note: str = ""
 
     def __post_init__(self):
         for name in ("estimates", "targets", "pictures"):

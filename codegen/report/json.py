@@ -73,6 +73,7 @@ def _axis_limit(report, key):
 
 def method_rows(methods) -> list[dict]:
     """One row per method with its analysis (methods.analysis.analyse), for the methods table."""
+    from ..methods import tolerance_note
     from ..methods.analysis import analyse
 
     rows = []
@@ -88,5 +89,6 @@ def method_rows(methods) -> list[dict]:
             "real_axis_limit": _axis_limit(report, "real_axis_limit"),
             "imag_axis_limit": _axis_limit(report, "imag_axis_limit"),
             "stability_function": str(report.stability.function),
-            "source": getattr(m, "source", "")})
+            "order_note": tolerance_note(m) or None,
+            "source": m.source})
     return rows

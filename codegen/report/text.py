@@ -84,7 +84,8 @@ def target_lines(r) -> list[str]:
 def check_lines(outcome) -> list[str]:
     """Every line of `tickwright check` for a report.CheckOutcome, the verdict last."""
     r = outcome.report
-    lines = [f"{r.model}: {outcome.method_name} ({r.method}), dt = {r.dt:g} s, {r.substeps} "
+    note = f"; {outcome.method_note}" if outcome.method_note else ""
+    lines = [f"{r.model}: {outcome.method_name} ({r.method}{note}), dt = {r.dt:g} s, {r.substeps} "
              "substep(s)"]
     body = [row("strict compile", True, r.strict_compile)]
     for c in r.cross_checks:
@@ -131,6 +132,7 @@ def methods_table(rows) -> list[str]:
         lines.append(f"{r['id']:<18} {r['stages']:>6} {order:>6}  {r['kind']:<20} {flags} "
                      f"{_limit(r['real_axis_limit']):>10} {_limit(r['imag_axis_limit']):>10}  "
                      f"{r['name']}; {r['source']}")
+    lines += [f"{r['id']}: order {r['order']} ({r['order_note']})" for r in rows if r["order_note"]]
     lines.append("A/L: A-stable, L-stable; axis limits: where |R(z)| <= 1 ends on the negative "
                  "real and the imaginary axis (z = h*lambda).")
     return lines

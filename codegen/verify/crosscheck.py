@@ -15,14 +15,9 @@ from ..build import build
 from ..methods import NEWTON_KINDS, Method
 from ..model import Model
 from ..pipeline import generate
+from ..rounding import rounding_per_step
 from ..run import as_precision, run_c
 from .scenario import DEFAULT_ACCURACY, excitation, state_scales
-
-# Unit roundoff of each precision.
-EPS = {"float": 2.0 ** -24, "double": 2.0 ** -53}
-# Rounding units allowed per stage and step: each stage adds a handful of roundings of |x|-sized
-# values (the stage sum, the rate evaluation, the update): a few units per stage and step.
-ULPS_PER_STAGE = 4
 
 
 @dataclass(frozen=True)
@@ -46,12 +41,12 @@ def rounding_tolerance(model: Model, method: Method, precision: str, ticks: int,
                        scale: float, growth: float) -> float:
     """Bound on |C - reference| from rounding alone.
 
-    Each of the ticks*substeps steps adds at most ULPS_PER_STAGE*(stages + 1) rounding units of
-    the state's scale; errors are carried forward with at most the growth factor of the model
-    over the run (exp of the largest positive real part of the Jacobian's eigenvalues times T).
+    Each of the ticks*substeps steps adds at most rounding.rounding_per_step of the state's
+    scale; errors are carried forward with at most the growth factor of the model over the run
+    (exp of the largest positive real part of the Jacobian's eigenvalues times T).
     """
     steps = ticks * substeps
-    return ULPS_PER_STAGE * (method.stages + 1) * EPS[precision] * steps * scale * growth
+    return rounding_per_step(method.stages, precision) * steps * scale * growth
 
 
 def growth_factor(model: Model, horizon: float, inputs: np.ndarray) -> float:
