@@ -151,7 +151,7 @@ def test_json_writes_non_finite_numbers_as_null():
 def test_methods_table_line():
     row = dict(id="rk4", name="classical RK4", stages=4, order=4, embedded_order=None,
                kind="explicit", a_stable=False, l_stable=False, real_axis_limit=-2.785293563,
-               imag_axis_limit=2.828427125, source="HNW I, II.1")
+               imag_axis_limit=2.828427125, source="HNW I, II.1", order_note=None)
     lines = methods_table([row])
     assert lines[1] == ("rk4                     4      4  explicit             n n     -2.785 "
                         "     2.828  classical RK4; HNW I, II.1")
@@ -159,6 +159,9 @@ def test_methods_table_line():
                      a_stable=True, l_stable=True, real_axis_limit=None, imag_axis_limit=None)
     assert methods_table([unbounded])[1].startswith(
         "be                      4      1  diagonally implicit  y y  unbounded  unbounded  ")
+    # A method decided to a tolerance gets a note line under the table.
+    noted = dict(row, id="mine", order_note="decimal data: conditions to 1e-12")
+    assert "mine: order 4 (decimal data: conditions to 1e-12)" in methods_table([noted])
 
 
 def test_targets_table_shows_a_readable_run_command():
