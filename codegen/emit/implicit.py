@@ -323,10 +323,8 @@ def _sum(terms) -> str:
 # ---------------------------------------------------------------------------------------------
 
 def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s = method.stages
-    h = step.h
-    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_w[{w.nx}];",
+    step = w.step
+    decl = [f"{w.real_t} tw_k[{len(step.stages)}][{w.nx}];", f"{w.real_t} tw_w[{w.nx}];",
             f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_f[{w.nx}];", f"{w.real_t} tw_r[{w.nx}];"]
     inner: list[str] = []
     nonlinear = not step.linear
@@ -334,25 +332,21 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
         decl += [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
                  "uint32_t tw_done;"]
         inner += _scale_lines(w)
-    factored = None
-    diagonals = list(step.solve.diagonals)
-    for i in range(s):
-        inner.append(f"/* stage {i + 1}: c = {method.c[i]} */")
-        terms = [f"{w.const(f'A{i + 1}{j + 1}H', h * method.a[i][j], f'a{i + 1}{j + 1}*h')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.a[i][j] != 0]
+    for stage in step.stages:
+        i = stage.index
+        inner.append(f"/* stage {i + 1}: c = {stage.c} */")
+        terms = [f"{w.const(f'A{i + 1}{j + 1}H', v, f'a{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.terms]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                   f"    tw_w[tw_i] = tw_x[tw_i]" + (f" + {grouped(terms)};" if terms else ";"),
                   "}"]
-        time = w.time(method.c[i] * h, f"C{i + 1}H")
-        g = h * method.a[i][i]
-        if g == 0:
+        time = w.time(stage.time_offset, f"C{i + 1}H")
+        if stage.solve_index is None:
             inner.append(f"{w.p}_rates({time}, tw_w, tw_ctx, tw_k[{i}]);")
             continue
-        which = diagonals.index(g)
-        g_name = w.const(f"A{i + 1}{i + 1}H", g, f"a{i + 1}{i + 1}*h")
-        if factored != g:
+        g_name = w.const(f"A{i + 1}{i + 1}H", stage.diagonal, f"a{i + 1}{i + 1}*h")
+        if stage.refactor:
             inner += solver.factor(g_name)
-            factored = g
         if nonlinear:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{", "    tw_y[tw_i] = tw_w[tw_i];",
                       "}"]
@@ -360,7 +354,7 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
                         f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                         f"    tw_r[tw_i] = (tw_w[tw_i] + ({g_name} * tw_f[tw_i])) - tw_y[tw_i];",
                         "}",
-                        solver.call("tw_r", which)]
+                        solver.call("tw_r", stage.solve_index)]
             inner += _newton_loop(w, residual, w.model.nx, "tw_y", per_state=False)
         else:
             inner += ["/* f is linear in x: one Newton step from the stage base is exact */",
@@ -368,7 +362,7 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
                       f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                       f"    tw_r[tw_i] = {g_name} * tw_f[tw_i];",
                       "}",
-                      solver.call("tw_r", which),
+                      solver.call("tw_r", stage.solve_index),
                       f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                       "    tw_y[tw_i] = tw_w[tw_i] + tw_r[tw_i];",
                       "}"]
@@ -376,28 +370,28 @@ def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
                   f"    tw_k[{i}][tw_i] = (tw_y[tw_i] - tw_w[tw_i]) / {g_name};",
                   "}"]
     terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
-             for j, v in step.update_f]
+             for j, v in step.weights]
     inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
               f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     return decl, inner
 
 
 def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s, nx, h = method.stages, w.model.nx, step.h
+    step = w.step
+    s, nx = len(step.stages), w.model.nx
     size = s * nx
     decl = [f"{w.real_t} tw_z[{size}];", f"{w.real_t} tw_f[{s}][{w.nx}];",
             f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_r[{size}];"]
     inner = [f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{", f"    tw_z[tw_i] = {w.zero};", "}"]
-    times = [w.time(method.c[p] * h, f"C{p + 1}H") for p in range(s)]
+    times = [w.time(stage.time_offset, f"C{p + 1}H") for p, stage in enumerate(step.stages)]
     residual = []
     for p in range(s):
         residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                      f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
                      f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
-    for p in range(s):
-        terms = [f"{w.const(f'A{p + 1}{q + 1}H', h * method.a[p][q], f'a{p + 1}{q + 1}*h')}"
-                 f" * tw_f[{q}][tw_i]" for q in range(s) if method.a[p][q] != 0]
+    for p, stage in enumerate(step.stages):
+        terms = [f"{w.const(f'A{p + 1}{q + 1}H', v, f'a{p + 1}{q + 1}*h')}"
+                 f" * tw_f[{q}][tw_i]" for q, v in stage.terms]
         residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                      f"    tw_r[{p * nx}U + tw_i] = {grouped(terms) if terms else w.zero} - "
                      f"tw_z[{p * nx}U + tw_i];", "}"]
@@ -413,59 +407,60 @@ def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[s
         inner = _scale_lines(w) + inner
         inner += _newton_loop(w, residual, size, "tw_z", per_state=True)
     inner.append("/* update */")
-    if step.update_z:
+    if step.z_weights:
         terms = [f"{w.const(f'D{i + 1}', d, f'd{i + 1} (b^T A^-1)')} * tw_z[{i * nx}U + tw_i]"
-                 for i, d in step.update_z]
+                 for i, d in step.z_weights]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                   f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     else:
-        for p, _ in step.update_f:
+        for p, _ in step.weights:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                       f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
                       f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
         terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_f[{j}][tw_i]"
-                 for j, v in step.update_f]
+                 for j, v in step.weights]
         inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                   f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
     return decl, inner
 
 
 def _rosenbrock_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s, h = method.stages, step.h
-    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_y[{w.nx}];"]
+    step = w.step
+    needs_y = any(stage.terms for stage in step.stages)
+    decl = [f"{w.real_t} tw_k[{len(step.stages)}][{w.nx}];"]
+    if needs_y:
+        decl.append(f"{w.real_t} tw_y[{w.nx}];")
     if step.dfdt is not None:
         decl.append(f"{w.real_t} tw_ft[{w.nx}];")
-    g_name = w.const("GAMMAH", method.gamma * h, "gamma*h")
+    g_name = w.const("GAMMAH", step.gamma_h, "gamma*h")
     inner = solver.factor(g_name)
     if step.dfdt is not None:
         inner.append(f"{w.p}_dfdt(tw_t, tw_x, tw_ctx, tw_ft);")
-    c = method.c
-    for i in range(s):
+    for stage in step.stages:
+        i = stage.index
         inner.append(f"/* stage {i + 1} */")
-        terms = [f"{w.const(f'ALPHA{i + 1}{j + 1}H', h * method.alpha[i][j], f'alpha{i + 1}{j + 1}*h')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.alpha[i][j] != 0]
+        terms = [f"{w.const(f'ALPHA{i + 1}{j + 1}H', v, f'alpha{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.terms]
         source = "tw_x"
         if terms:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                       f"    tw_y[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
             source = "tw_y"
-        inner.append(f"{w.p}_rates({w.time(c[i] * h, f'C{i + 1}H')}, {source}, tw_ctx, tw_k[{i}]);")
-        extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', method.coupling[i][j], f'coupling{i + 1}{j + 1}')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.coupling[i][j] != 0]
-        if step.dfdt is not None and method.time[i] != 0:
-            extra.append(f"{w.const(f'TIME{i + 1}H', method.time[i] * h, f'time{i + 1}*h')}"
+        inner.append(f"{w.p}_rates({w.time(stage.time_offset, f'C{i + 1}H')}, {source}, tw_ctx, "
+                     f"tw_k[{i}]);")
+        extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', v, f'coupling{i + 1}{j + 1}')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.coupling]
+        if stage.time_term != 0:
+            extra.append(f"{w.const(f'TIME{i + 1}H', stage.time_term, f'time{i + 1}*h')}"
                          " * tw_ft[tw_i]")
         if extra:
             inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
                       f"    tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + {grouped(extra)};", "}"]
         inner.append(solver.call(f"tw_k[{i}]"))
-    terms = [f"{w.const(f'B{j + 1}H', h * method.b[j], f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
-             for j in range(s) if method.b[j] != 0]
+    terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
+             for j, v in step.weights]
     inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
               f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
-    if not any("tw_y" in line for line in inner):
-        decl = [d for d in decl if not d.startswith(f"{w.real_t} tw_y[")]
     return decl, inner
 
 
