@@ -10,7 +10,9 @@ import sys
 import pytest
 
 from codegen.build import strict_compile
-from codegen.emit import GENERATED_MARKER, comment_text
+from codegen.emit import GENERATED_MARKER, comment_text, render_body
+from codegen.emit.statements import (Blank, Comment, EliminationFactor, EliminationStep, If, Line,
+                                     Loop, LuNames, Sections, VectorLoop)
 from codegen.errors import EmitError
 from codegen.methods import EXPLICIT, builtin, builtin_ids
 from codegen.model import load_model
@@ -119,3 +121,85 @@ def test_one_statement_per_line(axis, method_id):
             if not code.lstrip().startswith("for ("):
                 assert code.count(";") <= 1, (name, line)
         assert "\n}\n" in text or name.endswith(".h")
+
+
+# ---------------------------------------------------------------------------------------------
+# Layout of function bodies (templates/macros.j2 and solve.c.j2): exact text
+# ---------------------------------------------------------------------------------------------
+
+def test_statement_trees_are_laid_out_with_four_space_indents():
+    body = [Line("int tw_a;"), Blank(),
+            VectorLoop("N", (Line("tw_x[tw_i] = 0.0F;"),
+                             Loop("tw_j", "1U", "tw_j < tw_i", (Line("f(tw_j);"),)))),
+            If((("a > 0", (Line("b();"),)), ("c > 0", (Comment("nothing"),))),
+               otherwise=(Line("d();"),))]
+    assert render_body(body) == (
+        "int tw_a;\n"
+        "\n"
+        "for (tw_i = 0U; tw_i < N; ++tw_i) {\n"
+        "    tw_x[tw_i] = 0.0F;\n"
+        "    for (tw_j = 1U; tw_j < tw_i; ++tw_j) {\n"
+        "        f(tw_j);\n"
+        "    }\n"
+        "}\n"
+        "if (a > 0) {\n"
+        "    b();\n"
+        "} else if (c > 0) {\n"
+        "    /* nothing */\n"
+        "} else {\n"
+        "    d();\n"
+        "}\n")
+
+
+def test_sections_after_a_check_run_only_while_ok_and_empty_ones_vanish():
+    body = Sections()
+    body.add(Line("f();"))
+    body.check("g() != 0", "s = 1;")
+    body.add(Line("h();"))
+    body.check("k() != 0", "s = 2;")
+    assert body.may_fail
+    assert render_body([body.node("s == 0")]) == (
+        "f();\n"
+        "if (g() != 0) {\n"
+        "    s = 1;\n"
+        "}\n"
+        "if (s == 0) {\n"
+        "    h();\n"
+        "    if (k() != 0) {\n"
+        "        s = 2;\n"
+        "    }\n"
+        "}\n")
+    assert not Sections().may_fail
+
+
+def test_straight_line_elimination_is_laid_out_from_slots():
+    # A 2 x 2 factor in slots [l00, l10, u01, u11] order 0, 1, 2, 3 (pivot 0 first, then 3).
+    steps = (EliminationStep(pivot=0, first=True, rows=((1, ((3, 2),)),)),
+             EliminationStep(pivot=3, first=False, rows=()))
+    node = EliminationFactor(names=LuNames(), steps=steps, fabs="fabsf", zero="0.0F")
+    assert render_body([node]) == (
+        "if (!(fabsf(tw_lu[0]) > 0.0F) || (isfinite(tw_lu[0]) == 0)) {\n"
+        "    tw_bad = 1;\n"
+        "}\n"
+        "if (tw_bad == 0) {\n"
+        "    tw_lu[1] = tw_lu[1] / tw_lu[0];\n"
+        "    tw_lu[3] = tw_lu[3] - (tw_lu[1] * tw_lu[2]);\n"
+        "}\n"
+        "if ((tw_bad == 0) && (!(fabsf(tw_lu[3]) > 0.0F) || (isfinite(tw_lu[3]) == 0))) {\n"
+        "    tw_bad = 1;\n"
+        "}\n")
+
+
+def test_an_empty_block_is_refused():
+    with pytest.raises(EmitError, match="non-empty"):
+        VectorLoop("N", ())
+    with pytest.raises(EmitError, match="non-empty"):
+        If((("a", ()),))
+
+
+def test_rosenbrock_declares_the_stage_argument_only_when_a_stage_needs_it(axis):
+    # Rosenbrock-Euler evaluates f at x only (alpha = 0); ROS2's second stage at x + h k1.
+    euler = generate(axis, builtin("rosenbrock-euler"), 1e-3).text("axis.c")
+    ros2 = generate(axis, builtin("ros2"), 1e-3).text("axis.c")
+    assert "tw_y" not in euler
+    assert "axis_real_t tw_y[AXIS_NX];" in ros2
