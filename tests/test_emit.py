@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 import subprocess
@@ -18,7 +19,7 @@ from codegen.methods import EXPLICIT, builtin, builtin_ids
 from codegen.model import load_model
 from codegen.pipeline import generate
 
-from conftest import DEMO_MODELS, ROOT
+from conftest import DEMO_MODELS, EXAMPLES, ROOT
 
 EXPLICIT_IDS = [i for i in builtin_ids() if builtin(i).kind == EXPLICIT]
 
@@ -203,3 +204,62 @@ def test_rosenbrock_declares_the_stage_argument_only_when_a_stage_needs_it(axis)
     ros2 = generate(axis, builtin("ros2"), 1e-3).text("axis.c")
     assert "tw_y" not in euler
     assert "axis_real_t tw_y[AXIS_NX];" in ros2
+
+
+# ---------------------------------------------------------------------------------------------
+# Provenance: the preamble names files and their SHA-256, never a folder of this machine
+# ---------------------------------------------------------------------------------------------
+
+TABLEAU_TOML = """
+name = "my Radau IIA"
+c = ["1/3", 1]
+b = ["3/4", "1/4"]
+a = [["5/12", "-1/12"], ["3/4", "1/4"]]
+"""
+
+
+def test_the_same_model_emitted_from_two_checkouts_gives_identical_bytes(tmp_path, monkeypatch):
+    from click.testing import CliRunner
+
+    from codegen import __version__
+    from codegen.cli import main
+
+    model_bytes = (EXAMPLES / "heater.toml").read_bytes()
+    tableau_bytes = TABLEAU_TOML.encode("utf-8")
+    outputs = []
+    for folder in ("first_checkout", "second_place/other_checkout"):
+        where = tmp_path / folder
+        where.mkdir(parents=True)
+        (where / "heater.toml").write_bytes(model_bytes)
+        (where / "radau.toml").write_bytes(tableau_bytes)
+        # One run with paths relative to the working directory, one with absolute paths.
+        if folder == "first_checkout":
+            monkeypatch.chdir(where)
+            args = ["heater.toml", "--tableau", "radau.toml"]
+        else:
+            monkeypatch.chdir(tmp_path)
+            args = [str(where / "heater.toml"), "--tableau", str(where / "radau.toml")]
+        out = where / "gen"
+        result = CliRunner().invoke(main, ["emit", *args, "--dt", "0.5", "--out", str(out)])
+        assert result.exit_code == 0, result.output
+        outputs.append({p.name: p.read_bytes() for p in sorted(out.iterdir())})
+    assert outputs[0] == outputs[1] and sorted(outputs[0]) == ["heater.c", "heater.h"]
+    for text in (b.decode("utf-8") for b in outputs[0].values()):
+        assert "checkout" not in text and "second_place" not in text and str(tmp_path) not in text
+        assert f"tickwright {__version__}" in text
+        assert f"Model file heater.toml, SHA-256 {hashlib.sha256(model_bytes).hexdigest()}." \
+            in text
+        assert f"Method file radau.toml, SHA-256 {hashlib.sha256(tableau_bytes).hexdigest()}." \
+            in text
+
+
+def test_a_model_built_in_python_says_so_in_the_preamble():
+    import sympy as sp
+
+    from codegen.model import State, define
+
+    x = sp.Symbol("x", real=True)
+    model = define("decay", states=[State(name="x", initial=1.0, rate=-x)])
+    header = generate(model, builtin("rk4"), 0.1).text("decay.h")
+    assert "Model built in Python (no model file)." in header
+    assert "Method file" not in header  # a built-in method has no file

@@ -174,11 +174,15 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
     printer = Printer(precision)
     method = step.method
     preamble = [
-        f"{GENERATED_MARKER} {__version__} from model '{model.name}' ({comment_text(model.source)}).",
+        f"{GENERATED_MARKER} {__version__} from model '{model.name}'.",
+        _file_note("Model", model.source, model.digest) or "Model built in Python (no model file).",
         f"Method: {comment_text(method.name)} ({method.id}), {kind_note}.",
-        f"Tick: dt = {step.dt} s in {step.substeps} substep(s) of h = {step.h} s; "
-        f"precision: {precision}.",
     ]
+    method_file = _file_note("Method", getattr(method, "origin", ""), getattr(method, "digest", ""))
+    if method_file:
+        preamble.append(method_file)
+    preamble.append(f"Tick: dt = {step.dt} s in {step.substeps} substep(s) of h = {step.h} s; "
+                    f"precision: {precision}.")
     if model.description:
         preamble.append("Model: " + comment_text(model.description))
     preamble += [
@@ -238,6 +242,17 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
         define_width=max(len(d["name"]) for d in defines), fields=fields, outputs=outputs,
         status=status, prototypes=prototypes, asserts=asserts, constants=[], constant_width=0,
         functions=[], names=names, printer=printer)
+
+
+def _file_note(what: str, path: str, digest: str) -> str:
+    """'<what> file <name>, SHA-256 <hex>.' for a file read from disk, '' without a digest.
+
+    The file name and the hash of its bytes identify the input; its folder would make the same
+    input give different bytes in another checkout.
+    """
+    if not digest:
+        return ""
+    return f"{what} file {comment_text(Path(path).name)}, SHA-256 {digest}."
 
 
 def _describe(q) -> str:
