@@ -178,7 +178,8 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
         _file_note("Model", model.source, model.digest) or "Model built in Python (no model file).",
         f"Method: {comment_text(method.name)} ({method.id}), {kind_note}.",
     ]
-    method_file = _file_note("Method", getattr(method, "origin", ""), getattr(method, "digest", ""))
+    method_file = _file_note("Method", getattr(method, "origin", "") or method.id,
+                             getattr(method, "digest", ""))
     if method_file:
         preamble.append(method_file)
     preamble.append(f"Tick: dt = {step.dt} s in {step.substeps} substep(s) of h = {step.h} s; "

@@ -1,9 +1,9 @@
 """Function bodies as small trees of C statements, laid out by templates/macros.j2 (statements).
 
 Python decides every statement, expression, name and number; the template only indents, opens and
-closes braces. Each node has a ``kind`` the macro dispatches on. Sections (a body split where a
-check may fail) replace any marker in the text: every section after the first runs only while
-the status is still OK.
+closes braces. Each node has a ``kind`` the macro dispatches on. A body that may fail is built
+as Sections, split after each check: every section after the first runs only while the status
+is still OK (one exit point per function, MISRA C:2012 rule 15.5).
 """
 
 from __future__ import annotations
