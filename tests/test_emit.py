@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
 import re
 import subprocess
@@ -10,13 +11,15 @@ import sys
 import pytest
 
 from codegen.build import strict_compile
-from codegen.emit import GENERATED_MARKER, comment_text
+from codegen.emit import GENERATED_MARKER, comment_text, render_body
+from codegen.emit.statements import (Blank, Comment, EliminationFactor, EliminationStep, If, Line,
+                                     Loop, LuNames, Sections, VectorLoop)
 from codegen.errors import EmitError
 from codegen.methods import EXPLICIT, builtin, builtin_ids
 from codegen.model import load_model
 from codegen.pipeline import generate
 
-from conftest import DEMO_MODELS, ROOT
+from conftest import DEMO_MODELS, EXAMPLES, ROOT
 
 EXPLICIT_IDS = [i for i in builtin_ids() if builtin(i).kind == EXPLICIT]
 
@@ -122,3 +125,144 @@ def test_one_statement_per_line(axis, method_id):
             if not code.lstrip().startswith("for ("):
                 assert code.count(";") <= 1, (name, line)
         assert "\n}\n" in text or name.endswith(".h")
+
+
+# ---------------------------------------------------------------------------------------------
+# Layout of function bodies (templates/macros.j2 and solve.c.j2): exact text
+# ---------------------------------------------------------------------------------------------
+
+def test_statement_trees_are_laid_out_with_four_space_indents():
+    body = [Line("int tw_a;"), Blank(),
+            VectorLoop("N", (Line("tw_x[tw_i] = 0.0F;"),
+                             Loop("tw_j", "1U", "tw_j < tw_i", (Line("f(tw_j);"),)))),
+            If((("a > 0", (Line("b();"),)), ("c > 0", (Comment("nothing"),))),
+               otherwise=(Line("d();"),))]
+    assert render_body(body) == (
+        "int tw_a;\n"
+        "\n"
+        "for (tw_i = 0U; tw_i < N; ++tw_i) {\n"
+        "    tw_x[tw_i] = 0.0F;\n"
+        "    for (tw_j = 1U; tw_j < tw_i; ++tw_j) {\n"
+        "        f(tw_j);\n"
+        "    }\n"
+        "}\n"
+        "if (a > 0) {\n"
+        "    b();\n"
+        "} else if (c > 0) {\n"
+        "    /* nothing */\n"
+        "} else {\n"
+        "    d();\n"
+        "}\n")
+
+
+def test_sections_after_a_check_run_only_while_ok_and_empty_ones_vanish():
+    body = Sections()
+    body.add(Line("f();"))
+    body.check("g() != 0", "s = 1;")
+    body.add(Line("h();"))
+    body.check("k() != 0", "s = 2;")
+    assert body.may_fail
+    assert render_body([body.node("s == 0")]) == (
+        "f();\n"
+        "if (g() != 0) {\n"
+        "    s = 1;\n"
+        "}\n"
+        "if (s == 0) {\n"
+        "    h();\n"
+        "    if (k() != 0) {\n"
+        "        s = 2;\n"
+        "    }\n"
+        "}\n")
+    assert not Sections().may_fail
+
+
+def test_straight_line_elimination_is_laid_out_from_slots():
+    # A 2 x 2 factor in slots [l00, l10, u01, u11] order 0, 1, 2, 3 (pivot 0 first, then 3).
+    steps = (EliminationStep(pivot=0, first=True, rows=((1, ((3, 2),)),)),
+             EliminationStep(pivot=3, first=False, rows=()))
+    node = EliminationFactor(names=LuNames(), steps=steps, fabs="fabsf", zero="0.0F")
+    assert render_body([node]) == (
+        "if (!(fabsf(tw_lu[0]) > 0.0F) || (isfinite(tw_lu[0]) == 0)) {\n"
+        "    tw_bad = 1;\n"
+        "}\n"
+        "if (tw_bad == 0) {\n"
+        "    tw_lu[1] = tw_lu[1] / tw_lu[0];\n"
+        "    tw_lu[3] = tw_lu[3] - (tw_lu[1] * tw_lu[2]);\n"
+        "}\n"
+        "if ((tw_bad == 0) && (!(fabsf(tw_lu[3]) > 0.0F) || (isfinite(tw_lu[3]) == 0))) {\n"
+        "    tw_bad = 1;\n"
+        "}\n")
+
+
+def test_an_empty_block_is_refused():
+    with pytest.raises(EmitError, match="non-empty"):
+        VectorLoop("N", ())
+    with pytest.raises(EmitError, match="non-empty"):
+        If((("a", ()),))
+
+
+def test_rosenbrock_declares_the_stage_argument_only_when_a_stage_needs_it(axis):
+    # Rosenbrock-Euler evaluates f at x only (alpha = 0); ROS2's second stage at x + h k1.
+    euler = generate(axis, builtin("rosenbrock-euler"), 1e-3).text("axis.c")
+    ros2 = generate(axis, builtin("ros2"), 1e-3).text("axis.c")
+    assert "tw_y" not in euler
+    assert "axis_real_t tw_y[AXIS_NX];" in ros2
+
+
+# ---------------------------------------------------------------------------------------------
+# Provenance: the preamble names files and their SHA-256, never a folder of this machine
+# ---------------------------------------------------------------------------------------------
+
+TABLEAU_TOML = """
+name = "my Radau IIA"
+c = ["1/3", 1]
+b = ["3/4", "1/4"]
+a = [["5/12", "-1/12"], ["3/4", "1/4"]]
+"""
+
+
+def test_the_same_model_emitted_from_two_checkouts_gives_identical_bytes(tmp_path, monkeypatch):
+    from click.testing import CliRunner
+
+    from codegen import __version__
+    from codegen.cli import main
+
+    model_bytes = (EXAMPLES / "heater.toml").read_bytes()
+    tableau_bytes = TABLEAU_TOML.encode("utf-8")
+    outputs = []
+    for folder in ("first_checkout", "second_place/other_checkout"):
+        where = tmp_path / folder
+        where.mkdir(parents=True)
+        (where / "heater.toml").write_bytes(model_bytes)
+        (where / "radau.toml").write_bytes(tableau_bytes)
+        # One run with paths relative to the working directory, one with absolute paths.
+        if folder == "first_checkout":
+            monkeypatch.chdir(where)
+            args = ["heater.toml", "--tableau", "radau.toml"]
+        else:
+            monkeypatch.chdir(tmp_path)
+            args = [str(where / "heater.toml"), "--tableau", str(where / "radau.toml")]
+        out = where / "gen"
+        result = CliRunner().invoke(main, ["emit", *args, "--dt", "0.5", "--out", str(out)])
+        assert result.exit_code == 0, result.output
+        outputs.append({p.name: p.read_bytes() for p in sorted(out.iterdir())})
+    assert outputs[0] == outputs[1] and sorted(outputs[0]) == ["heater.c", "heater.h"]
+    for text in (b.decode("utf-8") for b in outputs[0].values()):
+        assert "checkout" not in text and "second_place" not in text and str(tmp_path) not in text
+        assert f"tickwright {__version__}" in text
+        assert f"Model file heater.toml, SHA-256 {hashlib.sha256(model_bytes).hexdigest()}." \
+            in text
+        assert f"Method file radau.toml, SHA-256 {hashlib.sha256(tableau_bytes).hexdigest()}." \
+            in text
+
+
+def test_a_model_built_in_python_says_so_in_the_preamble():
+    import sympy as sp
+
+    from codegen.model import State, define
+
+    x = sp.Symbol("x", real=True)
+    model = define("decay", states=[State(name="x", initial=1.0, rate=-x)])
+    header = generate(model, builtin("rk4"), 0.1).text("decay.h")
+    assert "Model built in Python (no model file)." in header
+    assert "Method file" not in header  # a built-in method has no file

@@ -463,6 +463,15 @@ def test_newton_options_are_validated():
         discretize_implicit(model, builtin("sdirk2"), 0.1, newton_tol=2.0)
 
 
+def test_an_unknown_linear_solve_names_the_cli_option():
+    # The message names the option the user typed (emit --linear-solve), in one line.
+    model, *_ = spring_damper()
+    with pytest.raises(MethodError) as err:
+        discretize_implicit(model, builtin("sdirk2"), 0.1, solver="qr")
+    message = str(err.value)
+    assert message == "--linear-solve: must be one of auto, elimination, dense-lu, got 'qr'"
+
+
 def test_crank_nicolson_is_the_trapezoidal_rule():
     assert builtin("crank-nicolson") is builtin("trapezoidal")
 

@@ -17,14 +17,15 @@ from .exact import discretize_exact, linear_parts, zoh_propagator
 from .explicit import discretize_explicit, exact_dt, needed_stages, output_block, rate_block
 from .implicit import discretize_implicit, state_scales
 from .ir import (DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_TOLERANCE, DENSE_LU, ELIMINATION,
-                 INVERSE, SOLVERS, Assign, Block, ImplicitStep, Jacobian, NewtonSpec, Stage,
-                 StepProgram)
+                 INVERSE, SOLVERS, Assign, Block, CoupledStage, DiagonalStage, ImplicitStep,
+                 Jacobian, NewtonSpec, RosenbrockStage, Stage, StepProgram)
 from .derivatives import jacobian, time_derivative
 from .linear_solve import G, LinearSolve, MatrixEntry, plan_solve
 
 __all__ = ["DEFAULT_NEWTON_ITERATIONS", "DEFAULT_NEWTON_TOLERANCE", "DENSE_LU", "ELIMINATION",
-           "G", "INVERSE", "SOLVERS", "Assign", "Block", "ImplicitStep", "Jacobian",
-           "LinearSolve", "MatrixEntry", "NewtonSpec", "Stage", "StepProgram", "discretize",
+           "G", "INVERSE", "SOLVERS", "Assign", "Block", "CoupledStage", "DiagonalStage",
+           "ImplicitStep", "Jacobian", "LinearSolve", "MatrixEntry", "NewtonSpec",
+           "RosenbrockStage", "Stage", "StepProgram", "discretize",
            "discretize_exact", "discretize_explicit", "discretize_implicit", "exact_dt",
            "jacobian", "linear_parts", "needed_stages", "output_block", "plan_solve",
            "rate_block", "state_scales", "time_derivative", "zoh_propagator"]

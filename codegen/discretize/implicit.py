@@ -34,7 +34,8 @@ from ..errors import MethodError
 from ..methods import DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT, NEWTON_KINDS
 from ..model import Model
 from .explicit import exact_dt, output_block, rate_block
-from .ir import DEFAULT_NEWTON_ITERATIONS, DEFAULT_STATE_SCALE, ImplicitStep, NewtonSpec
+from .ir import (DEFAULT_NEWTON_ITERATIONS, DEFAULT_STATE_SCALE, INVERSE, CoupledStage,
+                 DiagonalStage, ImplicitStep, NewtonSpec, RosenbrockStage)
 from .derivatives import jacobian, time_derivative
 from .linear_solve import G, plan_solve
 
@@ -58,30 +59,72 @@ def discretize_implicit(model: Model, method, dt, substeps: int = 1,
                   outputs=output_block(model), newton=newton)
     where = f"{model.source}: --method {method.id}"
     jac = jacobian(model)
+    s = method.stages
+    weights = tuple((j, h * method.b[j]) for j in range(s) if method.b[j] != 0)
     if method.kind == LINEARLY_IMPLICIT:
-        g = method.gamma * h
+        dfdt = time_derivative(model)
+        gamma_h = method.gamma * h
         return ImplicitStep(scheme=LINEARLY_IMPLICIT, jacobian=jac,
-                            solve=plan_solve(jac, [[G]], (g,), solver, where),
-                            dfdt=time_derivative(model), **common)
+                            solve=plan_solve(jac, [[G]], (gamma_h,), solver, where),
+                            stages=rosenbrock_stages(method, h, dfdt is not None),
+                            weights=weights, gamma_h=gamma_h, dfdt=dfdt, **common)
     if method.kind not in NEWTON_KINDS:
         raise MethodError(f"{method.id}: {method.kind} methods use another step generator")
-    s = method.stages
     if method.kind == DIAGONALLY_IMPLICIT:
-        diagonals = []
-        for i in range(s):
-            g = h * method.a[i][i]
-            if g != 0 and (not diagonals or diagonals[-1] != g):
-                diagonals.append(g)
-        solve = plan_solve(jac, [[G]], tuple(dict.fromkeys(diagonals)), solver, where)
-    else:
-        solve = plan_solve(jac, [[h * method.a[p][q] for q in range(s)] for p in range(s)], (),
-                           solver, where)
-    update_z, update_f = (), ()
+        diagonals = tuple(dict.fromkeys(h * method.a[i][i] for i in range(s)
+                                        if method.a[i][i] != 0))
+        solve = plan_solve(jac, [[G]], diagonals, solver, where)
+        return ImplicitStep(scheme=DIAGONALLY_IMPLICIT, jacobian=jac, solve=solve,
+                            stages=diagonal_stages(method, h, diagonals, solve.kind != INVERSE),
+                            weights=weights, **common)
+    stages = tuple(CoupledStage(index=p, c=method.c[p], time_offset=method.c[p] * h,
+                                terms=tuple((q, h * method.a[p][q]) for q in range(s)
+                                            if method.a[p][q] != 0))
+                   for p in range(s))
+    solve = plan_solve(jac, [[h * method.a[p][q] for q in range(s)] for p in range(s)], (),
+                       solver, where)
+    z_weights = stage_weights(method)
+    return ImplicitStep(scheme=FULLY_IMPLICIT, jacobian=jac, solve=solve, stages=stages,
+                        weights=() if z_weights else weights, z_weights=z_weights, **common)
+
+
+def diagonal_stages(method, h, diagonals: tuple, factored_at_run_time: bool
+                    ) -> tuple[DiagonalStage, ...]:
+    """The stages of a diagonally implicit step; a factorization is reused while h*a_ii repeats."""
+    stages, factored = [], None
+    for i in range(method.stages):
+        g = h * method.a[i][i]
+        refactor = g != 0 and g != factored
+        if g != 0:
+            factored = g
+        stages.append(DiagonalStage(
+            index=i, c=method.c[i], time_offset=method.c[i] * h,
+            terms=tuple((j, h * method.a[i][j]) for j in range(i) if method.a[i][j] != 0),
+            diagonal=g, solve_index=diagonals.index(g) if g != 0 else None,
+            refactor=refactor and factored_at_run_time))
+    return tuple(stages)
+
+
+def rosenbrock_stages(method, h, time_dependent: bool) -> tuple[RosenbrockStage, ...]:
+    """The stages of a linearly implicit step; the df/dt terms only when f depends on t."""
+    s = method.stages
+    return tuple(RosenbrockStage(
+        index=i, c=method.c[i], time_offset=method.c[i] * h,
+        terms=tuple((j, h * method.alpha[i][j]) for j in range(i) if method.alpha[i][j] != 0),
+        coupling=tuple((j, method.coupling[i][j]) for j in range(i)
+                       if method.coupling[i][j] != 0),
+        time_term=method.time[i] * h if time_dependent else sp.Integer(0))
+        for i in range(s))
+
+
+def stage_weights(method) -> tuple[tuple[int, sp.Expr], ...]:
+    """(i, d_i) for the non-zero entries of d = b^T A^-1, or () when A is singular.
+
+    With Z_i = Y_i - y0 = h sum_j a_ij f(Y_j), the update y1 = y0 + h sum_j b_j f(Y_j) equals
+    y0 + sum_i d_i Z_i without evaluating f again (HW IV.8, from memory).
+    """
     a = sp.Matrix(method.a)
-    if method.kind == FULLY_IMPLICIT and a.det() != 0:
-        d = (sp.Matrix([list(method.b)]) * a.inv()).applyfunc(sp.nsimplify)
-        update_z = tuple((i, sp.radsimp(d[0, i])) for i in range(s) if d[0, i] != 0)
-    else:
-        update_f = tuple((i, h * method.b[i]) for i in range(s) if method.b[i] != 0)
-    return ImplicitStep(scheme=method.kind, jacobian=jac, solve=solve, update_z=update_z,
-                        update_f=update_f, **common)
+    if a.det() == 0:
+        return ()
+    d = (sp.Matrix([list(method.b)]) * a.inv()).applyfunc(sp.nsimplify)
+    return tuple((i, sp.radsimp(d[0, i])) for i in range(method.stages) if d[0, i] != 0)

@@ -148,12 +148,68 @@ class Jacobian:
 
 
 @dataclass(frozen=True)
+class DiagonalStage:
+    """Stage i of a diagonally implicit Runge-Kutta step, every coefficient multiplied by h.
+
+    The stage value solves Y_i = W_i + (h a_ii) f(t + c_i h, Y_i) with the explicit part
+    W_i = x + sum_j (h a_ij) k_j, j < i; then k_i = (Y_i - W_i) / (h a_ii). terms holds (j, h*a_ij)
+    for the non-zero a_ij only. diagonal is h*a_ii (0 for an explicit stage: k_i = f(t + c_i h,
+    W_i)); solve_index is the position of diagonal in LinearSolve.diagonals (and of its
+    generation-time inverse), None for an explicit stage; refactor says the iteration matrix
+    I - h a_ii J must be factored at run time before this stage (the first implicit stage, and every
+    stage whose h*a_ii differs from the last factored one).
+    """
+
+    index: int
+    c: sp.Expr
+    time_offset: sp.Expr
+    terms: tuple[tuple[int, sp.Expr], ...]
+    diagonal: sp.Expr
+    solve_index: int | None
+    refactor: bool
+
+
+@dataclass(frozen=True)
+class CoupledStage:
+    """Stage p of a fully implicit Runge-Kutta step: Z_p = sum_q (h a_pq) f(t + c_q h, x + Z_q).
+
+    terms holds (q, h*a_pq) for the non-zero a_pq only (one block row of I - h A (x) J).
+    """
+
+    index: int
+    c: sp.Expr
+    time_offset: sp.Expr
+    terms: tuple[tuple[int, sp.Expr], ...]
+
+
+@dataclass(frozen=True)
+class RosenbrockStage:
+    """Stage i of a linearly implicit step, every coefficient multiplied by h where it applies.
+
+    (I - gamma h J) k_i = f(t + c_i h, x + sum_j (alpha_ij h) k_j) + sum_j coupling_ij k_j
+    + (time_i h) df/dt. terms holds (j, alpha_ij*h) and coupling (j, coupling_ij) for the non-zero
+    entries only; time_term is time_i*h, or 0 when f does not depend on t explicitly.
+    """
+
+    index: int
+    c: sp.Expr
+    time_offset: sp.Expr
+    terms: tuple[tuple[int, sp.Expr], ...]
+    coupling: tuple[tuple[int, sp.Expr], ...]
+    time_term: sp.Expr
+
+
+@dataclass(frozen=True)
 class ImplicitStep:
     """The discretized implicit step for one substep h = dt / substeps.
 
     scheme: 'diagonally implicit', 'fully implicit', 'linearly implicit' or 'exact'.
-    For Runge-Kutta schemes: update_z holds (i, d_i) when x+ = x + sum d_i Z_i (A invertible),
-    otherwise update_f holds (i, h b_i) and the update evaluates f at the converged stages.
+    stages: DiagonalStage, CoupledStage or RosenbrockStage per stage of the scheme (none for exact).
+    weights: (j, h*b_j) for the non-zero b_j: x+ = x + sum_j (h b_j) k_j, with k_j the stage
+    rates (for a fully implicit step, f evaluated at the converged stages).
+    z_weights: fully implicit with A invertible only: (i, d_i) for the non-zero d_i of
+    d = b^T A^-1, and x+ = x + sum_i d_i Z_i replaces the update with weights.
+    gamma_h: linearly implicit only: gamma*h, the scale of J in its iteration matrix.
     For the exact scheme, propagator holds (Ad, Bd, ed) with Bd's columns per input and ed the
     response to the model's constant term.
     """
@@ -168,8 +224,10 @@ class ImplicitStep:
     jacobian: Jacobian | None = None
     solve: LinearSolve | None = None
     newton: NewtonSpec = NewtonSpec()
-    update_z: tuple[tuple[int, sp.Expr], ...] = ()
-    update_f: tuple[tuple[int, sp.Expr], ...] = ()
+    stages: tuple[DiagonalStage | CoupledStage | RosenbrockStage, ...] = ()
+    weights: tuple[tuple[int, sp.Expr], ...] = ()
+    z_weights: tuple[tuple[int, sp.Expr], ...] = ()
+    gamma_h: sp.Expr | None = None
     dfdt: Block | None = None
     propagator: tuple | None = None
 

@@ -179,7 +179,7 @@ def plan_solve(jac: Jacobian, coefficients, diagonals=(), solver: str = "auto",
     constant.
     """
     if solver not in SOLVERS:
-        raise MethodError(f"--solver: must be one of {', '.join(SOLVERS)}, got {solver!r}")
+        raise MethodError(f"--linear-solve: must be one of {', '.join(SOLVERS)}, got {solver!r}")
     entries = matrix_entries(jac, coefficients)
     size = jac.nx * len(coefficients)
     if jac.values is not None and solver == "auto" and size <= MAX_PREINVERTED_SIZE:

@@ -2,6 +2,7 @@
 
 - ``printer``: sympy expressions and exact values -> C99 text in float or double;
 - ``common``: the generated files (``CSource``), names, and what every step kind shares;
+- ``statements``: function bodies as trees of C statements, laid out by templates/macros.j2;
 - ``explicit`` and ``implicit``: the context of each step kind for the templates in templates/.
 """
 
@@ -10,13 +11,14 @@ from __future__ import annotations
 from ..discretize import ImplicitStep, StepProgram
 from ..errors import EmitError
 from .common import (GENERATED_MARKER, MISRA_DEVIATIONS, STATUS_CODES, CSource, comment_text,
-                     error_scale, finish, render)
+                     error_scale, finish, render, render_body)
 from .explicit import explicit_context
 from .implicit import implicit_context
 from .printer import DOUBLE, FLOAT, PRECISIONS, Printer
 
 __all__ = ["DOUBLE", "FLOAT", "GENERATED_MARKER", "MISRA_DEVIATIONS", "PRECISIONS",
-           "STATUS_CODES", "CSource", "Printer", "comment_text", "emit", "error_scale", "render"]
+           "STATUS_CODES", "CSource", "Printer", "comment_text", "emit", "error_scale", "render",
+           "render_body"]
 
 
 def emit(step: StepProgram | ImplicitStep, precision: str = FLOAT) -> CSource:

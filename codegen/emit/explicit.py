@@ -12,6 +12,7 @@ from ..discretize import StepProgram
 from .common import (Names, advance_body, base_context, coefficient, error_scale, grouped,
                      outputs_function, rates_function, reset_function, sum_of_products)
 from .printer import Printer
+from .statements import Comment, If, Line, Sections, VectorLoop
 
 def explicit_context(step: StepProgram, precision: str) -> dict:
     """Context for an explicit Runge-Kutta step with stages kept as arrays."""
@@ -24,33 +25,28 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
     decl = ([f"{names.real_t} tw_y[{nx}];"] if needs_y else []) + \
         [f"{names.real_t} tw_k[{len(step.stages)}][{nx}];"]
     slot = {stage.index: n for n, stage in enumerate(step.stages)}
-    inner: list[str] = []
+    inner = Sections()
     for n, stage in enumerate(step.stages):
         i = stage.index
-        inner.append(f"/* stage {i + 1}: c = {stage.c} */")
+        inner.add(Comment(f"stage {i + 1}: c = {stage.c}"))
         time = "tw_t" if stage.time_offset == 0 else \
             f"tw_t + {coefficient(constants, f'{up}_C{i + 1}H', stage.time_offset, printer, f'c{i + 1}*h')}"
         if not stage.terms:
-            inner.append(f"{model.name}_rates({time}, tw_x, tw_ctx, tw_k[{n}]);")
+            inner.add(Line(f"{model.name}_rates({time}, tw_x, tw_ctx, tw_k[{n}]);"))
             continue
         terms = grouped(
             f"{coefficient(constants, f'{up}_A{i + 1}{j + 1}H', v, printer, f'a{i + 1}{j + 1}*h')}"
             f" * tw_k[{slot[j]}][tw_i]" for j, v in stage.terms)
-        inner += [f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
-                  f"    tw_y[tw_i] = tw_x[tw_i] + {terms};",
-                  "}"]
-        inner.append(f"{model.name}_rates({time}, tw_y, tw_ctx, tw_k[{n}]);")
+        inner.add(VectorLoop(nx, (Line(f"tw_y[tw_i] = tw_x[tw_i] + {terms};"),)),
+                  Line(f"{model.name}_rates({time}, tw_y, tw_ctx, tw_k[{n}]);"))
     estimate, estimate_decl = [], []
     if step.error_weights:
         estimate, estimate_decl = error_estimate_lines(step, names, printer, constants, slot)
     terms = grouped(
         f"{coefficient(constants, f'{up}_B{j + 1}H', v, printer, f'b{j + 1}*h')}"
         f" * tw_k[{slot[j]}][tw_i]" for j, v in step.weights)
-    inner += estimate
-    inner += ["/* update */",
-              f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + {terms};",
-              "}"]
+    inner.add(*estimate, Comment("update"),
+              VectorLoop(nx, (Line(f"tw_x[tw_i] = tw_x[tw_i] + {terms};"),)))
     step_name = coefficient(constants, f"{up}_STEP", step.h, printer, "h")
     doc = f"One tick: {step.substeps} step(s) of {step.method.name}, stages kept as arrays."
     signature = f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)"
@@ -73,8 +69,8 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
 
 
 def error_estimate_lines(step: StepProgram, names: Names, printer: Printer, constants: list,
-                         slot: dict) -> tuple[list[str], list[str]]:
-    """Lines of one substep that update the embedded error estimate, and their declarations.
+                         slot: dict) -> tuple[list, list[str]]:
+    """Statements of one substep that update the embedded error estimate, and their declarations.
 
     The estimate of one step is e_i = h sum_j (b_j - b_hat_j) k_j[i], the difference between the
     solution and its embedded lower-order companion (HNW I, section II.4, from memory); err is
@@ -88,19 +84,16 @@ def error_estimate_lines(step: StepProgram, names: Names, printer: Printer, cons
         f"{coefficient(constants, f'{up}_E{j + 1}H', v, printer, f'(b{j + 1} - b_hat{j + 1})*h')}"
         f" * tw_k[{slot[j]}][tw_i]" for j, v in step.error_weights)
     fabs = printer.expr(sp.Abs(sp.Symbol("tw_e"))).replace("(tw_e)", "")
-    estimate = ["/* embedded error estimate, as a fraction of each state's full scale */",
-                f"for (tw_i = 0U; tw_i < {nx}; ++tw_i) {{",
-                f"    const {names.real_t} tw_e = {fabs}({terms}) * tw_err_weight[tw_i];",
-                "    if (tw_e > tw_err_max) {",
-                "        tw_err_max = tw_e;",
-                "    }",
-                "}"]
+    estimate = [Comment("embedded error estimate, as a fraction of each state's full scale"),
+                VectorLoop(nx, (
+                    Line(f"const {names.real_t} tw_e = {fabs}({terms}) * tw_err_weight[tw_i];"),
+                    If((("tw_e > tw_err_max", (Line("tw_err_max = tw_e;"),)),))))]
     decl = [f"const {names.real_t} tw_err_weight[{nx}] = {{{', '.join(weights)}}};",
             f"{names.real_t} tw_err_max = {printer.literal(0)};"]
     return estimate, decl
 
 
-def error_estimate_functions(step: StepProgram, names: Names, body: list[str],
+def error_estimate_functions(step: StepProgram, names: Names, body: list,
                              ctx: dict) -> list[dict]:
     """The step with its error estimate as a static function, and the two public entries."""
     model = step.model
@@ -120,9 +113,8 @@ def error_estimate_functions(step: StepProgram, names: Names, body: list[str],
                        f"{names.real_t} *tw_err)",
              body=body),
         dict(doc="See the header.", signature=signature,
-             body=[f"return {tick}(tw_ctx, tw_err);"]),
+             body=[Line(f"return {tick}(tw_ctx, tw_err);")]),
         dict(doc="See the header; the error estimate is computed and dropped.",
              signature=f"{names.status_t} {model.name}_advance({names.ctx_t} *tw_ctx)",
-             body=[f"{names.real_t} tw_err;",
-                   f"return {tick}(tw_ctx, &tw_err);"]),
+             body=[Line(f"{names.real_t} tw_err;"), Line(f"return {tick}(tw_ctx, &tw_err);")]),
     ]

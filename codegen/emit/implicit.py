@@ -13,11 +13,18 @@ from __future__ import annotations
 import sympy as sp
 
 from ..discretize import DENSE_LU, ELIMINATION, G, INVERSE, ImplicitStep, LinearSolve
+from ..discretize.linear_solve import GENERATION_DIGITS
 from ..methods import DIAGONALLY_IMPLICIT, EXACT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
-from .common import (Names, advance_body, base_context, block_lines, coefficient,
-                     fail_lines, free_names, grouped, outputs_function, rates_function,
-                     reset_function, sum_of_products, unpack_lines)
+from .common import (Names, advance_body, base_context, block_lines, coefficient, fail_on,
+                     free_names, grouped, outputs_function, rates_function, reset_function,
+                     sum_of_products, unpack_lines)
 from .printer import FLOAT, Printer
+from .statements import (Blank, Comment, DenseFactor, DenseSolve, EliminationFactor,
+                         EliminationSolve, EliminationStep, If, Line, Loop, LuNames, Sections,
+                         VectorLoop, lines)
+
+# The C names inside the generated factor and solve functions (and the arrays passed to them).
+LU_NAMES = LuNames()
 
 
 class _Writer:
@@ -60,18 +67,18 @@ def block_function(w: _Writer, block, fname: str, out: str, doc: str) -> dict:
     used = free_names(block)
     body = unpack_lines(w.names, w.step, used, from_x=True)
     if model.time not in used:
-        body.append(f"(void){model.time};")
+        body.append(Line(f"(void){model.time};"))
     if not used & {s.name for s in model.states}:
-        body.append("(void)tw_x;")
+        body.append(Line("(void)tw_x;"))
     if not used & ({u.name for u in model.inputs} | {p.name for p in model.tunable}):
-        body.append("(void)tw_ctx;")
+        body.append(Line("(void)tw_ctx;"))
     body += block_lines(block, w.printer, w.real_t, lambda i, name: f"{out}[{i}]")
     return dict(doc=doc, signature=f"static void {w.p}_{fname}(const {w.real_t} {model.time}, "
                 f"const {w.real_t} *restrict tw_x, const {w.names.ctx_t} *restrict tw_ctx, "
                 f"{w.real_t} *restrict {out})", body=body)
 
 
-def _entry_value(w: _Writer, entry, solve: LinearSolve, nx: int) -> str:
+def _entry_value(w: _Writer, entry, nx: int) -> str:
     terms = []
     for coeff, k in entry.terms:
         if coeff == G:
@@ -86,160 +93,113 @@ def _entry_value(w: _Writer, entry, solve: LinearSolve, nx: int) -> str:
     return f"{w.one} - {total}" if entry.one else f"-{total}"
 
 
+def _elimination_steps(solve: LinearSolve) -> tuple[EliminationStep, ...]:
+    """Per pivot in elimination order: its slot and, per row below, the slots it updates."""
+    slot, n = solve.slot(), solve.size
+    filled = set(solve.filled)
+    position = {v: k for k, v in enumerate(solve.order)}
+    steps = []
+    for k in solve.order:
+        below = [i for i in range(n) if (i, k) in filled and position[i] > position[k]]
+        right = [j for j in range(n) if (k, j) in filled and position[j] > position[k]]
+        steps.append(EliminationStep(
+            pivot=slot[(k, k)], first=k == solve.order[0],
+            rows=tuple((slot[(i, k)], tuple((slot[(i, j)], slot[(k, j)]) for j in right))
+                       for i in below)))
+    return tuple(steps)
+
+
 def factor_function(w: _Writer, solve: LinearSolve) -> dict | None:
     """Assemble M = I - (C (x) J) and factor it: straight-line elimination or looped dense LU."""
     if solve.kind == INVERSE:
         return None
     nx = w.model.nx
     n = solve.size
+    lu = LU_NAMES
     scale_arg = f"const {w.real_t} tw_g, " if solve.needs_scale else ""
     if solve.kind == ELIMINATION:
         slot = solve.slot()
-        body = ["int tw_bad = 0;", "",
-                f"/* assemble the {len(solve.entries)} structural non-zeros; fill-in starts at 0 */"]
         given = {(e.row, e.col): e for e in solve.entries}
-        for rc in solve.filled:
-            value = _entry_value(w, given[rc], solve, nx) if rc in given else w.zero
-            body.append(f"tw_lu[{slot[rc]}] = {value};")
-        position = {v: k for k, v in enumerate(solve.order)}
-        body.append("/* eliminate in reverse Cuthill-McKee order; no pivoting, pivots guarded */")
-        filled = set(solve.filled)
-        for k in solve.order:
-            pk = slot[(k, k)]
-            below = [i for i in range(n) if (i, k) in filled and position[i] > position[k]]
-            right = [j for j in range(n) if (k, j) in filled and position[j] > position[k]]
-            steps = []
-            for i in below:
-                steps.append(f"tw_lu[{slot[(i, k)]}] = tw_lu[{slot[(i, k)]}] / tw_lu[{pk}];")
-                for j in right:
-                    steps.append(f"tw_lu[{slot[(i, j)]}] = tw_lu[{slot[(i, j)]}] - "
-                                 f"(tw_lu[{slot[(i, k)]}] * tw_lu[{slot[(k, j)]}]);")
-            bad_pivot = f"!({w.fabs}(tw_lu[{pk}]) > {w.zero}) || (isfinite(tw_lu[{pk}]) == 0)"
-            if k != solve.order[0]:
-                bad_pivot = f"(tw_bad == 0) && ({bad_pivot})"
-            body += [f"if ({bad_pivot}) {{", "    tw_bad = 1;", "}"]
-            if steps:
-                body += ["if (tw_bad == 0) {", *["    " + line for line in steps], "}"]
-        body.append("return tw_bad;")
+        body = [Line(f"int {lu.bad} = 0;"), Blank(),
+                Comment(f"assemble the {len(solve.entries)} structural non-zeros; fill-in starts "
+                        "at 0")]
+        body += lines(*(f"{lu.lu}[{slot[rc]}] = "
+                        f"{_entry_value(w, given[rc], nx) if rc in given else w.zero};"
+                        for rc in solve.filled))
+        body += [Comment("eliminate in reverse Cuthill-McKee order; no pivoting, pivots guarded"),
+                 EliminationFactor(names=lu, steps=_elimination_steps(solve), fabs=w.fabs,
+                                   zero=w.zero),
+                 Line(f"return {lu.bad};")]
         return dict(doc=f"Assemble and factor the {n} x {n} iteration matrix by straight-line "
                     "elimination along its sparsity pattern. Returns 1 on a zero or non-finite "
                     "pivot.",
                     signature=f"static int {w.p}_factor(const {w.real_t} *restrict tw_jac, "
-                              f"{scale_arg}{w.real_t} *restrict tw_lu)",
+                              f"{scale_arg}{w.real_t} *restrict {lu.lu})",
                     body=body)
     size = w.raw("NSOLVE", f"{n}U", "size of the linear system of one solve")
-    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", f"{w.real_t} tw_m;",
-            "int tw_bad = 0;", "",
-            f"for (tw_i = 0U; tw_i < ({size} * {size}); ++tw_i) {{",
-            f"    tw_lu[tw_i] = {w.zero};", "}"]
-    body += [f"tw_lu[{e.row * n + e.col}] = {_entry_value(w, e, solve, nx)};"
-             for e in solve.entries]
-    body += [
-        f"for (tw_k = 0U; (tw_k < {size}) && (tw_bad == 0); ++tw_k) {{",
-        "    size_t tw_p = tw_k;",
-        f"    {w.real_t} tw_big = {w.fabs}(tw_lu[(tw_k * {size}) + tw_k]);",
-        f"    for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
-        f"        if ({w.fabs}(tw_lu[(tw_i * {size}) + tw_k]) > tw_big) {{",
-        f"            tw_big = {w.fabs}(tw_lu[(tw_i * {size}) + tw_k]);",
-        "            tw_p = tw_i;",
-        "        }",
-        "    }",
-        "    tw_piv[tw_k] = tw_p;",
-        f"    if (!(tw_big > {w.zero}) || (isfinite(tw_big) == 0)) {{",
-        "        tw_bad = 1;",
-        "    } else {",
-        "        if (tw_p != tw_k) {",
-        f"            for (tw_j = 0U; tw_j < {size}; ++tw_j) {{",
-        f"                tw_m = tw_lu[(tw_k * {size}) + tw_j];",
-        f"                tw_lu[(tw_k * {size}) + tw_j] = tw_lu[(tw_p * {size}) + tw_j];",
-        f"                tw_lu[(tw_p * {size}) + tw_j] = tw_m;",
-        "            }",
-        "        }",
-        f"        for (tw_i = tw_k + 1U; tw_i < {size}; ++tw_i) {{",
-        f"            tw_m = tw_lu[(tw_i * {size}) + tw_k] / tw_lu[(tw_k * {size}) + tw_k];",
-        f"            tw_lu[(tw_i * {size}) + tw_k] = tw_m;",
-        f"            for (tw_j = tw_k + 1U; tw_j < {size}; ++tw_j) {{",
-        f"                tw_lu[(tw_i * {size}) + tw_j] = tw_lu[(tw_i * {size}) + tw_j] - "
-        f"(tw_m * tw_lu[(tw_k * {size}) + tw_j]);",
-        "            }",
-        "        }",
-        "    }",
-        "}",
-        "return tw_bad;"]
+    body = [*lines(f"size_t {lu.row};", f"size_t {lu.col};", f"size_t {lu.pivot};",
+                   f"{w.real_t} {lu.scratch};", f"int {lu.bad} = 0;"), Blank(),
+            VectorLoop(f"({size} * {size})", (Line(f"{lu.lu}[{lu.row}] = {w.zero};"),),
+                       index=lu.row)]
+    body += lines(*(f"{lu.lu}[{e.row * n + e.col}] = {_entry_value(w, e, nx)};"
+                    for e in solve.entries))
+    body += [DenseFactor(names=lu, size=size, real_t=w.real_t, fabs=w.fabs, zero=w.zero),
+             Line(f"return {lu.bad};")]
     return dict(doc=f"Assemble the {n} x {n} iteration matrix and factor it by LU with partial "
-                "pivoting (row swaps in tw_piv). Returns 1 on a zero or non-finite pivot.",
+                f"pivoting (row swaps in {lu.piv}). Returns 1 on a zero or non-finite pivot.",
                 signature=f"static int {w.p}_factor(const {w.real_t} *restrict tw_jac, {scale_arg}"
-                          f"{w.real_t} *restrict tw_lu, size_t *restrict tw_piv)",
+                          f"{w.real_t} *restrict {lu.lu}, size_t *restrict {lu.piv})",
                 body=body)
 
 
 def solve_functions(w: _Writer, solve: LinearSolve) -> list[dict]:
     """In-place solve M d = r with the factors (or with the generation-time inverse)."""
     n = solve.size
+    lu = LU_NAMES
     if solve.kind == INVERSE:
         functions = []
         for which, inverse in enumerate(solve.inverses):
             suffix = f"{which + 1}" if len(solve.inverses) > 1 else ""
-            body = [f"{w.real_t} tw_in[{n}];", "size_t tw_i;", "",
-                    f"for (tw_i = 0U; tw_i < {n}U; ++tw_i) {{", "    tw_in[tw_i] = tw_r[tw_i];", "}"]
+            body = [*lines(f"{w.real_t} tw_in[{n}];", "size_t tw_i;"), Blank(),
+                    VectorLoop(f"{n}U", (Line(f"tw_in[tw_i] = {lu.rhs}[tw_i];"),))]
             for i in range(n):
                 terms = [f"{w.printer.literal(v)} * tw_in[{j}]" for j, v in enumerate(inverse[i])
                          if v != 0]
-                body.append(f"tw_r[{i}] = " + (sum_of_products(terms) if terms else w.zero) + ";")
+                body.append(Line(f"{lu.rhs}[{i}] = "
+                                 + (sum_of_products(terms) if terms else w.zero) + ";"))
             note = f" (h*a = {solve.diagonals[which]})" if solve.diagonals else ""
             functions.append(dict(
                 doc=f"Solve M d = r in place with the inverse of the constant iteration matrix"
-                    f"{note}, computed at generation time in {50}-digit arithmetic.",
-                signature=f"static void {w.p}_solve{suffix}({w.real_t} *restrict tw_r)",
+                    f"{note}, computed at generation time in {GENERATION_DIGITS}-digit arithmetic.",
+                signature=f"static void {w.p}_solve{suffix}({w.real_t} *restrict {lu.rhs})",
                 body=body))
         return functions
     if solve.kind == ELIMINATION:
         slot = solve.slot()
         filled = set(solve.filled)
         position = {v: k for k, v in enumerate(solve.order)}
-        body = ["/* forward substitution (unit lower factor) */"]
+        forward, back = [], []
         for i in solve.order:
-            terms = [f"tw_lu[{slot[(i, k)]}] * tw_r[{k}]" for k in solve.order
+            terms = [f"{lu.lu}[{slot[(i, k)]}] * {lu.rhs}[{k}]" for k in solve.order
                      if (i, k) in filled and position[k] < position[i]]
             if terms:
-                body.append(f"tw_r[{i}] = tw_r[{i}] - {grouped(terms)};")
-        body.append("/* back substitution */")
+                forward.append((i, grouped(terms)))
         for i in reversed(solve.order):
-            terms = [f"tw_lu[{slot[(i, j)]}] * tw_r[{j}]" for j in solve.order
+            terms = [f"{lu.lu}[{slot[(i, j)]}] * {lu.rhs}[{j}]" for j in solve.order
                      if (i, j) in filled and position[j] > position[i]]
-            rest = f"(tw_r[{i}] - {grouped(terms)})" if terms else f"tw_r[{i}]"
-            body.append(f"tw_r[{i}] = {rest} / tw_lu[{slot[(i, i)]}];")
+            numerator = f"({lu.rhs}[{i}] - {grouped(terms)})" if terms else f"{lu.rhs}[{i}]"
+            back.append((i, numerator, slot[(i, i)]))
         return [dict(doc="Solve M d = r in place with the straight-line factors.",
-                     signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
-                               f"{w.real_t} *restrict tw_r)",
-                     body=body)]
+                     signature=f"static void {w.p}_solve(const {w.real_t} *restrict {lu.lu}, "
+                               f"{w.real_t} *restrict {lu.rhs})",
+                     body=[EliminationSolve(names=lu, forward=tuple(forward), back=tuple(back))])]
     size = f"{w.up}_NSOLVE"
-    body = ["size_t tw_i;", "size_t tw_j;", "size_t tw_k;", f"{w.real_t} tw_s;", "",
-            f"for (tw_i = 0U; tw_i < {size}; ++tw_i) {{",
-            "    if (tw_piv[tw_i] != tw_i) {",
-            "        tw_s = tw_r[tw_i];",
-            "        tw_r[tw_i] = tw_r[tw_piv[tw_i]];",
-            "        tw_r[tw_piv[tw_i]] = tw_s;",
-            "    }",
-            "}",
-            f"for (tw_i = 1U; tw_i < {size}; ++tw_i) {{",
-            "    tw_s = tw_r[tw_i];",
-            "    for (tw_j = 0U; tw_j < tw_i; ++tw_j) {",
-            f"        tw_s = tw_s - (tw_lu[(tw_i * {size}) + tw_j] * tw_r[tw_j]);",
-            "    }",
-            "    tw_r[tw_i] = tw_s;",
-            "}",
-            f"for (tw_k = 0U; tw_k < {size}; ++tw_k) {{",
-            f"    tw_i = ({size} - 1U) - tw_k;",
-            "    tw_s = tw_r[tw_i];",
-            f"    for (tw_j = tw_i + 1U; tw_j < {size}; ++tw_j) {{",
-            f"        tw_s = tw_s - (tw_lu[(tw_i * {size}) + tw_j] * tw_r[tw_j]);",
-            "    }",
-            f"    tw_r[tw_i] = tw_s / tw_lu[(tw_i * {size}) + tw_i];",
-            "}"]
+    body = [*lines(f"size_t {lu.row};", f"size_t {lu.col};", f"size_t {lu.pivot};",
+                   f"{w.real_t} {lu.total};"), Blank(),
+            DenseSolve(names=lu, size=size)]
     return [dict(doc="Solve M d = r in place with the pivoted LU factors.",
-                 signature=f"static void {w.p}_solve(const {w.real_t} *restrict tw_lu, "
-                           f"const size_t *restrict tw_piv, {w.real_t} *restrict tw_r)",
+                 signature=f"static void {w.p}_solve(const {w.real_t} *restrict {lu.lu}, "
+                           f"const size_t *restrict {lu.piv}, {w.real_t} *restrict {lu.rhs})",
                  body=body)]
 
 
@@ -250,238 +210,209 @@ class _Solver:
         self.w, self.solve = w, solve
 
     def declarations(self) -> list[str]:
-        s, w = self.solve, self.w
+        s, w, lu = self.solve, self.w, LU_NAMES
         if s.kind == ELIMINATION:
-            return [f"{w.real_t} tw_lu[{len(s.filled)}];"]
+            return [f"{w.real_t} {lu.lu}[{len(s.filled)}];"]
         if s.kind == DENSE_LU:
-            return [f"{w.real_t} tw_lu[{s.size * s.size}];", f"size_t tw_piv[{s.size}];"]
+            return [f"{w.real_t} {lu.lu}[{s.size * s.size}];", f"size_t {lu.piv}[{s.size}];"]
         return []
 
-    def factor(self, g_name: str | None) -> list[str]:
+    def factor(self, body: Sections, g_name: str | None) -> None:
+        """Factor at run time (nothing for a generation-time inverse); SINGULAR on a bad pivot."""
         s, w = self.solve, self.w
         if s.kind == INVERSE:
-            return []
-        args = "tw_jac, " + (f"{g_name}, " if s.needs_scale else "") + "tw_lu" + \
-            (", tw_piv" if s.kind == DENSE_LU else "")
-        return fail_lines(w.names, f"{w.p}_factor({args}) != 0", "SINGULAR")
+            return
+        lu = LU_NAMES
+        args = "tw_jac, " + (f"{g_name}, " if s.needs_scale else "") + lu.lu + \
+            (f", {lu.piv}" if s.kind == DENSE_LU else "")
+        fail_on(body, w.names, f"{w.p}_factor({args}) != 0", "SINGULAR")
 
-    def call(self, vector: str, which: int = 0) -> str:
-        s, w = self.solve, self.w
+    def call(self, vector: str, which: int = 0) -> Line:
+        """Solve in place into vector; which selects the inverse of one diagonal (IR solve_index)."""
+        s, w, lu = self.solve, self.w, LU_NAMES
         if s.kind == INVERSE:
             suffix = f"{which + 1}" if len(s.inverses) > 1 else ""
-            return f"{w.p}_solve{suffix}({vector});"
+            return Line(f"{w.p}_solve{suffix}({vector});")
         if s.kind == DENSE_LU:
-            return f"{w.p}_solve(tw_lu, tw_piv, {vector});"
-        return f"{w.p}_solve(tw_lu, {vector});"
+            return Line(f"{w.p}_solve({lu.lu}, {lu.piv}, {vector});")
+        return Line(f"{w.p}_solve({lu.lu}, {vector});")
 
 
-def _scale_lines(w: _Writer) -> list[str]:
-    lines = []
+def _scale_lines(w: _Writer) -> list[Line]:
+    body = []
     for i, (s, scale) in enumerate(zip(w.model.states, w.step.newton.scale)):
         name = w.const(f"SCALE_{s.name.upper()}", sp.Rational(repr(float(scale))),
                        f"Newton scale floor of {s.name}")
-        lines.append(f"tw_scale[{i}] = {name} + {w.fabs}(tw_x[{i}]);")
-    return lines
+        body.append(Line(f"tw_scale[{i}] = {name} + {w.fabs}(tw_x[{i}]);"))
+    return body
 
 
-def _newton_test(w: _Writer, size: int, z: str, per_state: bool) -> list[str]:
+def _loop(bound: str, *texts: str) -> VectorLoop:
+    """A loop over the states (or the stage vector) with one statement per text."""
+    return VectorLoop(bound, tuple(lines(*texts)))
+
+
+def _newton_test(w: _Writer, size: int, z: str, per_state: bool) -> list:
     """Apply the correction tw_r to z and set tw_err to max |correction| / scale (NaN sticks)."""
     index = "tw_i % " + w.nx if per_state else "tw_i"
-    return [f"tw_err = {w.zero};",
-            f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{",
-            f"    const {w.real_t} tw_e = {w.fabs}(tw_r[tw_i]) / tw_scale[{index}];",
-            f"    {z}[tw_i] = {z}[tw_i] + tw_r[tw_i];",
-            "    if ((tw_e > tw_err) || (isnan(tw_e) != 0)) {",
-            "        tw_err = tw_e;",
-            "    }",
-            "}"]
+    return [Line(f"tw_err = {w.zero};"),
+            VectorLoop(f"{size}U", (
+                Line(f"const {w.real_t} tw_e = {w.fabs}(tw_r[tw_i]) / tw_scale[{index}];"),
+                Line(f"{z}[tw_i] = {z}[tw_i] + tw_r[tw_i];"),
+                If((("(tw_e > tw_err) || (isnan(tw_e) != 0)", (Line("tw_err = tw_e;"),)),))))]
 
 
-def _newton_loop(w: _Writer, inner: list[str], size: int, z: str, per_state: bool) -> list[str]:
+def _newton_loop(w: _Writer, body: Sections, residual: list, size: int, z: str,
+                 per_state: bool) -> None:
     """The bounded simplified-Newton loop around one residual evaluation + solve."""
-    tol = f"{w.up}_NEWTON_TOL"
-    body = ["tw_done = 0U;  /* 0: iterating, 1: converged, 2: diverged */",
-            f"for (tw_it = 0U; (tw_it < {w.up}_NEWTON_ITERATIONS) && (tw_done == 0U); ++tw_it) {{"]
-    body += ["    " + line if line else line for line in inner + _newton_test(w, size, z, per_state)]
-    body += [f"    if (tw_err <= {tol}) {{",
-             "        tw_done = 1U;",
-             "    } else if (isfinite(tw_err) == 0) {",
-             "        tw_done = 2U;",
-             "    } else {",
-             "        /* not yet converged: iterate again */",
-             "    }",
-             "}"]
-    return body + fail_lines(w.names, "tw_done != 1U", "NO_CONVERGENCE")
-
-
-def _sum(terms) -> str:
-    return sum_of_products(terms)
+    converged = If(((f"tw_err <= {w.up}_NEWTON_TOL", (Line("tw_done = 1U;"),)),
+                    ("isfinite(tw_err) == 0", (Line("tw_done = 2U;"),))),
+                   otherwise=(Comment("not yet converged: iterate again"),))
+    body.add(Line("tw_done = 0U;  /* 0: iterating, 1: converged, 2: diverged */"),
+             Loop("tw_it", "0U", f"(tw_it < {w.up}_NEWTON_ITERATIONS) && (tw_done == 0U)",
+                  (*residual, *_newton_test(w, size, z, per_state), converged)))
+    fail_on(body, w.names, "tw_done != 1U", "NO_CONVERGENCE")
 
 
 # ---------------------------------------------------------------------------------------------
 # Advance bodies, one per scheme
 # ---------------------------------------------------------------------------------------------
 
-def _dirk_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s = method.stages
-    h = step.h
-    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_w[{w.nx}];",
+def _dirk_body(w: _Writer, solver: _Solver, inner: Sections) -> list[str]:
+    step = w.step
+    decl = [f"{w.real_t} tw_k[{len(step.stages)}][{w.nx}];", f"{w.real_t} tw_w[{w.nx}];",
             f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_f[{w.nx}];", f"{w.real_t} tw_r[{w.nx}];"]
-    inner: list[str] = []
     nonlinear = not step.linear
     if nonlinear:
         decl += [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
                  "uint32_t tw_done;"]
-        inner += _scale_lines(w)
-    factored = None
-    diagonals = list(step.solve.diagonals)
-    for i in range(s):
-        inner.append(f"/* stage {i + 1}: c = {method.c[i]} */")
-        terms = [f"{w.const(f'A{i + 1}{j + 1}H', h * method.a[i][j], f'a{i + 1}{j + 1}*h')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.a[i][j] != 0]
-        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_w[tw_i] = tw_x[tw_i]" + (f" + {grouped(terms)};" if terms else ";"),
-                  "}"]
-        time = w.time(method.c[i] * h, f"C{i + 1}H")
-        g = h * method.a[i][i]
-        if g == 0:
-            inner.append(f"{w.p}_rates({time}, tw_w, tw_ctx, tw_k[{i}]);")
+        inner.add(*_scale_lines(w))
+    for stage in step.stages:
+        i = stage.index
+        inner.add(Comment(f"stage {i + 1}: c = {stage.c}"))
+        terms = [f"{w.const(f'A{i + 1}{j + 1}H', v, f'a{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.terms]
+        inner.add(_loop(w.nx, "tw_w[tw_i] = tw_x[tw_i]" + (f" + {grouped(terms)};" if terms
+                                                           else ";")))
+        time = w.time(stage.time_offset, f"C{i + 1}H")
+        if stage.solve_index is None:
+            inner.add(Line(f"{w.p}_rates({time}, tw_w, tw_ctx, tw_k[{i}]);"))
             continue
-        which = diagonals.index(g)
-        g_name = w.const(f"A{i + 1}{i + 1}H", g, f"a{i + 1}{i + 1}*h")
-        if factored != g:
-            inner += solver.factor(g_name)
-            factored = g
+        g_name = w.const(f"A{i + 1}{i + 1}H", stage.diagonal, f"a{i + 1}{i + 1}*h")
+        if stage.refactor:
+            solver.factor(inner, g_name)
         if nonlinear:
-            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{", "    tw_y[tw_i] = tw_w[tw_i];",
-                      "}"]
-            residual = [f"{w.p}_rates({time}, tw_y, tw_ctx, tw_f);",
-                        f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                        f"    tw_r[tw_i] = (tw_w[tw_i] + ({g_name} * tw_f[tw_i])) - tw_y[tw_i];",
-                        "}",
-                        solver.call("tw_r", which)]
-            inner += _newton_loop(w, residual, w.model.nx, "tw_y", per_state=False)
+            inner.add(_loop(w.nx, "tw_y[tw_i] = tw_w[tw_i];"))
+            residual = [Line(f"{w.p}_rates({time}, tw_y, tw_ctx, tw_f);"),
+                        _loop(w.nx, f"tw_r[tw_i] = (tw_w[tw_i] + ({g_name} * tw_f[tw_i])) - "
+                                    "tw_y[tw_i];"),
+                        solver.call("tw_r", stage.solve_index)]
+            _newton_loop(w, inner, residual, w.model.nx, "tw_y", per_state=False)
         else:
-            inner += ["/* f is linear in x: one Newton step from the stage base is exact */",
-                      f"{w.p}_rates({time}, tw_w, tw_ctx, tw_f);",
-                      f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_r[tw_i] = {g_name} * tw_f[tw_i];",
-                      "}",
-                      solver.call("tw_r", which),
-                      f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      "    tw_y[tw_i] = tw_w[tw_i] + tw_r[tw_i];",
-                      "}"]
-        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_k[{i}][tw_i] = (tw_y[tw_i] - tw_w[tw_i]) / {g_name};",
-                  "}"]
+            inner.add(Comment("f is linear in x: one Newton step from the stage base is exact"),
+                      Line(f"{w.p}_rates({time}, tw_w, tw_ctx, tw_f);"),
+                      _loop(w.nx, f"tw_r[tw_i] = {g_name} * tw_f[tw_i];"),
+                      solver.call("tw_r", stage.solve_index),
+                      _loop(w.nx, "tw_y[tw_i] = tw_w[tw_i] + tw_r[tw_i];"))
+        inner.add(_loop(w.nx, f"tw_k[{i}][tw_i] = (tw_y[tw_i] - tw_w[tw_i]) / {g_name};"))
     terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
-             for j, v in step.update_f]
-    inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
-    return decl, inner
+             for j, v in step.weights]
+    inner.add(Comment("update"), _loop(w.nx, f"tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};"))
+    return decl
 
 
-def _fully_implicit_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s, nx, h = method.stages, w.model.nx, step.h
+def _fully_implicit_body(w: _Writer, solver: _Solver, inner: Sections) -> list[str]:
+    step = w.step
+    s, nx = len(step.stages), w.model.nx
     size = s * nx
     decl = [f"{w.real_t} tw_z[{size}];", f"{w.real_t} tw_f[{s}][{w.nx}];",
             f"{w.real_t} tw_y[{w.nx}];", f"{w.real_t} tw_r[{size}];"]
-    inner = [f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{", f"    tw_z[tw_i] = {w.zero};", "}"]
-    times = [w.time(method.c[p] * h, f"C{p + 1}H") for p in range(s)]
+    times = [w.time(stage.time_offset, f"C{p + 1}H") for p, stage in enumerate(step.stages)]
     residual = []
     for p in range(s):
-        residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                     f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
-                     f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
-    for p in range(s):
-        terms = [f"{w.const(f'A{p + 1}{q + 1}H', h * method.a[p][q], f'a{p + 1}{q + 1}*h')}"
-                 f" * tw_f[{q}][tw_i]" for q in range(s) if method.a[p][q] != 0]
-        residual += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                     f"    tw_r[{p * nx}U + tw_i] = {grouped(terms) if terms else w.zero} - "
-                     f"tw_z[{p * nx}U + tw_i];", "}"]
+        residual += [_loop(w.nx, f"tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];"),
+                     Line(f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);")]
+    for p, stage in enumerate(step.stages):
+        terms = [f"{w.const(f'A{p + 1}{q + 1}H', v, f'a{p + 1}{q + 1}*h')}"
+                 f" * tw_f[{q}][tw_i]" for q, v in stage.terms]
+        residual.append(_loop(w.nx, f"tw_r[{p * nx}U + tw_i] = "
+                                    f"{grouped(terms) if terms else w.zero} - "
+                                    f"tw_z[{p * nx}U + tw_i];"))
     residual.append(solver.call("tw_r"))
-    inner += solver.factor(None)
-    if step.linear:
-        inner.append("/* f is linear in x: one Newton step from Z = 0 is exact */")
-        inner += residual
-        inner += [f"for (tw_i = 0U; tw_i < {size}U; ++tw_i) {{", "    tw_z[tw_i] = tw_r[tw_i];", "}"]
-    else:
+    if not step.linear:
         decl += [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
                  "uint32_t tw_done;"]
-        inner = _scale_lines(w) + inner
-        inner += _newton_loop(w, residual, size, "tw_z", per_state=True)
-    inner.append("/* update */")
-    if step.update_z:
-        terms = [f"{w.const(f'D{i + 1}', d, f'd{i + 1} (b^T A^-1)')} * tw_z[{i * nx}U + tw_i]"
-                 for i, d in step.update_z]
-        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
+        inner.add(*_scale_lines(w))
+    inner.add(_loop(f"{size}U", f"tw_z[tw_i] = {w.zero};"))
+    solver.factor(inner, None)
+    if step.linear:
+        inner.add(Comment("f is linear in x: one Newton step from Z = 0 is exact"), *residual,
+                  _loop(f"{size}U", "tw_z[tw_i] = tw_r[tw_i];"))
     else:
-        for p, _ in step.update_f:
-            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];", "}",
-                      f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"]
+        _newton_loop(w, inner, residual, size, "tw_z", per_state=True)
+    inner.add(Comment("update"))
+    if step.z_weights:
+        terms = [f"{w.const(f'D{i + 1}', d, f'd{i + 1} (b^T A^-1)')} * tw_z[{i * nx}U + tw_i]"
+                 for i, d in step.z_weights]
+        inner.add(_loop(w.nx, f"tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};"))
+    else:
+        for p, _ in step.weights:
+            inner.add(_loop(w.nx, f"tw_y[tw_i] = tw_x[tw_i] + tw_z[{p * nx}U + tw_i];"),
+                      Line(f"{w.p}_rates({times[p]}, tw_y, tw_ctx, tw_f[{p}]);"))
         terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_f[{j}][tw_i]"
-                 for j, v in step.update_f]
-        inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                  f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
-    return decl, inner
+                 for j, v in step.weights]
+        inner.add(_loop(w.nx, f"tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};"))
+    return decl
 
 
-def _rosenbrock_body(w: _Writer, solver: _Solver) -> tuple[list[str], list[str]]:
-    step, method = w.step, w.step.method
-    s, h = method.stages, step.h
-    decl = [f"{w.real_t} tw_k[{s}][{w.nx}];", f"{w.real_t} tw_y[{w.nx}];"]
+def _rosenbrock_body(w: _Writer, solver: _Solver, inner: Sections) -> list[str]:
+    step = w.step
+    decl = [f"{w.real_t} tw_k[{len(step.stages)}][{w.nx}];"]
+    if any(stage.terms for stage in step.stages):  # a stage evaluates f away from x
+        decl.append(f"{w.real_t} tw_y[{w.nx}];")
     if step.dfdt is not None:
         decl.append(f"{w.real_t} tw_ft[{w.nx}];")
-    g_name = w.const("GAMMAH", method.gamma * h, "gamma*h")
-    inner = solver.factor(g_name)
+    g_name = w.const("GAMMAH", step.gamma_h, "gamma*h")
+    solver.factor(inner, g_name)
     if step.dfdt is not None:
-        inner.append(f"{w.p}_dfdt(tw_t, tw_x, tw_ctx, tw_ft);")
-    c = method.c
-    for i in range(s):
-        inner.append(f"/* stage {i + 1} */")
-        terms = [f"{w.const(f'ALPHA{i + 1}{j + 1}H', h * method.alpha[i][j], f'alpha{i + 1}{j + 1}*h')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.alpha[i][j] != 0]
+        inner.add(Line(f"{w.p}_dfdt(tw_t, tw_x, tw_ctx, tw_ft);"))
+    for stage in step.stages:
+        i = stage.index
+        inner.add(Comment(f"stage {i + 1}"))
+        terms = [f"{w.const(f'ALPHA{i + 1}{j + 1}H', v, f'alpha{i + 1}{j + 1}*h')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.terms]
         source = "tw_x"
         if terms:
-            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_y[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
+            inner.add(_loop(w.nx, f"tw_y[tw_i] = tw_x[tw_i] + {grouped(terms)};"))
             source = "tw_y"
-        inner.append(f"{w.p}_rates({w.time(c[i] * h, f'C{i + 1}H')}, {source}, tw_ctx, tw_k[{i}]);")
-        extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', method.coupling[i][j], f'coupling{i + 1}{j + 1}')}"
-                 f" * tw_k[{j}][tw_i]" for j in range(i) if method.coupling[i][j] != 0]
-        if step.dfdt is not None and method.time[i] != 0:
-            extra.append(f"{w.const(f'TIME{i + 1}H', method.time[i] * h, f'time{i + 1}*h')}"
+        inner.add(Line(f"{w.p}_rates({w.time(stage.time_offset, f'C{i + 1}H')}, {source}, "
+                       f"tw_ctx, tw_k[{i}]);"))
+        extra = [f"{w.const(f'COUPLING{i + 1}{j + 1}', v, f'coupling{i + 1}{j + 1}')}"
+                 f" * tw_k[{j}][tw_i]" for j, v in stage.coupling]
+        if stage.time_term != 0:
+            extra.append(f"{w.const(f'TIME{i + 1}H', stage.time_term, f'time{i + 1}*h')}"
                          " * tw_ft[tw_i]")
         if extra:
-            inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-                      f"    tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + {grouped(extra)};", "}"]
-        inner.append(solver.call(f"tw_k[{i}]"))
-    terms = [f"{w.const(f'B{j + 1}H', h * method.b[j], f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
-             for j in range(s) if method.b[j] != 0]
-    inner += ["/* update */", f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{",
-              f"    tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};", "}"]
-    if not any("tw_y" in line for line in inner):
-        decl = [d for d in decl if not d.startswith(f"{w.real_t} tw_y[")]
-    return decl, inner
+            inner.add(_loop(w.nx, f"tw_k[{i}][tw_i] = tw_k[{i}][tw_i] + {grouped(extra)};"))
+        inner.add(solver.call(f"tw_k[{i}]"))
+    terms = [f"{w.const(f'B{j + 1}H', v, f'b{j + 1}*h')} * tw_k[{j}][tw_i]"
+             for j, v in step.weights]
+    inner.add(Comment("update"), _loop(w.nx, f"tw_x[tw_i] = tw_x[tw_i] + {grouped(terms)};"))
+    return decl
 
 
-def _exact_body(w: _Writer) -> tuple[list[str], list[str]]:
+def _exact_body(w: _Writer, inner: Sections) -> list[str]:
     ad, bd, ed = w.step.propagator
     model = w.model
     lit = w.printer.literal
-    inner = []
     for i in range(model.nx):
         terms = [f"{lit(v)} * tw_x[{j}]" for j, v in enumerate(ad[i]) if v != 0]
         terms += [f"{lit(v)} * tw_ctx->{u.name}" for u, v in zip(model.inputs, bd[i]) if v != 0]
         if ed[i] != 0:
             terms.append(lit(ed[i]))
-        inner.append(f"tw_y[{i}] = {_sum(terms) or w.zero};")
-    inner += [f"for (tw_i = 0U; tw_i < {w.nx}; ++tw_i) {{", "    tw_x[tw_i] = tw_y[tw_i];", "}"]
-    return [f"{w.real_t} tw_y[{w.nx}];"], inner
+        inner.add(Line(f"tw_y[{i}] = {sum_of_products(terms) or w.zero};"))
+    inner.add(_loop(w.nx, "tw_x[tw_i] = tw_y[tw_i];"))
+    return [f"{w.real_t} tw_y[{w.nx}];"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -539,19 +470,19 @@ def implicit_context(step: ImplicitStep, precision: str) -> dict:
         functions += solve_functions(w, step.solve)
     body_builders = {DIAGONALLY_IMPLICIT: _dirk_body, FULLY_IMPLICIT: _fully_implicit_body,
                      LINEARLY_IMPLICIT: _rosenbrock_body}
+    inner = Sections()
+    if solver is not None and not step.prefactored:
+        inner.add(Line(f"{model.name}_jacobian(tw_t, tw_x, tw_ctx, tw_jac);"))
     if step.scheme == EXACT:
-        decl, inner = _exact_body(w)
+        decl = _exact_body(w, inner)
     else:
-        decl, inner = body_builders[step.scheme](w, solver)
+        decl = body_builders[step.scheme](w, solver, inner)
     if solver is not None:
         if not step.prefactored:
             decl.append(f"{names.real_t} tw_jac[{len(step.jacobian.pattern)}];")
         decl += solver.declarations()
-    prelude = []
-    if solver is not None and not step.prefactored:
-        prelude.append(f"{model.name}_jacobian(tw_t, tw_x, tw_ctx, tw_jac);")
     step_name = None if step.scheme == EXACT else w.const("STEP", step.h, "h")
-    body = advance_body(step, names, decl, prelude + inner, step_name)
+    body = advance_body(step, names, decl, inner, step_name)
     doc = f"One tick: {step.substeps} step(s) of {step.method.name}; the context is written only " \
           "after every check passed."
     functions.append(dict(doc=doc, signature=f"{names.status_t} {model.name}_advance("
