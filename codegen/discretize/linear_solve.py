@@ -9,15 +9,13 @@ and rounded once.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import mpmath
 import numpy as np
 import sympy as sp
 
 from ..errors import MethodError
-from ..model import INTERNAL_PREFIX
-from .ir import DENSE_LU, ELIMINATION, INVERSE, SOLVERS, Jacobian
+from .ir import (DENSE_LU, ELIMINATION, INVERSE, SOLVERS, G, Jacobian, LinearSolve,
+                 MatrixEntry, elimination_counts)
 
 ELIMINATION_MAX_OPERATIONS = 2500
 # Digits for generation-time matrix work (inverse of a constant iteration matrix, expm): far more
@@ -26,58 +24,6 @@ GENERATION_DIGITS = 50
 # A constant iteration matrix is inverted at generation time up to this size (the inverse is emitted
 # as straight-line products, size^2 multiply-adds per solve); larger ones are factored at run time.
 MAX_PREINVERTED_SIZE = 32
-
-
-@dataclass(frozen=True)
-class MatrixEntry:
-    """One structural non-zero of the iteration matrix M = I - sum (coefficient * J[k]).
-
-    terms: (coefficient, k) with coefficient an exact number or G (the run-time diagonal scale).
-    """
-
-    row: int
-    col: int
-    one: bool
-    terms: tuple[tuple[sp.Expr, int], ...]
-
-
-# The run-time scale of J in M = I - G J for stage-by-stage solves (h a_ii, or gamma h).
-G = sp.Symbol(INTERNAL_PREFIX + "g", real=True)
-
-
-@dataclass(frozen=True)
-class LinearSolve:
-    """How M d = r is solved: kind elimination, dense-lu or inverse (M constant, inverted here).
-
-    order: pivot order (a permutation of 0..size-1) for straight-line elimination; filled: the
-    pattern of L + U after fill-in, in the slot order of the factor array; inverses: for kind
-    inverse, one exact inverse per value in diagonals (or one for the fully implicit matrix).
-    """
-
-    kind: str
-    size: int
-    entries: tuple[MatrixEntry, ...]
-    order: tuple[int, ...] = ()
-    filled: tuple[tuple[int, int], ...] = ()
-    diagonals: tuple[sp.Expr, ...] = ()
-    inverses: tuple[tuple[tuple[sp.Float, ...], ...], ...] = ()
-
-    @property
-    def needs_scale(self) -> bool:
-        return any(c == G for e in self.entries for c, _ in e.terms)
-
-    def slot(self) -> dict[tuple[int, int], int]:
-        return {rc: k for k, rc in enumerate(self.filled)}
-
-    def operation_count(self) -> int:
-        """Operations of one factorization and one solve (multiply-add counted as two)."""
-        if self.kind == INVERSE:
-            return 2 * self.size * self.size
-        if self.kind == DENSE_LU:
-            n = self.size
-            return (2 * n ** 3) // 3 + 2 * n * n
-        return sum(elimination_counts(self.size, set(self.filled), self.order))
-
 
 
 def matrix_entries(jac: Jacobian, coefficients) -> tuple[MatrixEntry, ...]:
@@ -113,18 +59,6 @@ def fill_in(size: int, pattern: set, order) -> tuple[tuple[int, int], ...]:
             for j in right:
                 filled.add((i, j))
     return tuple(sorted(filled))
-
-
-def elimination_counts(size: int, filled: set, order) -> tuple[int, int]:
-    """(factor, solve) operation counts of straight-line elimination on a filled pattern."""
-    position = {v: k for k, v in enumerate(order)}
-    factor = solve = 0
-    for k in order:
-        below = [i for i in range(size) if (i, k) in filled and position[i] > position[k]]
-        right = [j for j in range(size) if (k, j) in filled and position[j] > position[k]]
-        factor += len(below) * (1 + 2 * len(right))
-        solve += 2 * (len(below) + len(right)) + 1
-    return factor, solve
 
 
 def _rcm(size: int, pattern) -> tuple[int, ...]:
