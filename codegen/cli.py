@@ -112,10 +112,32 @@ def resolve_method(method_id: str | None, tableau_file: Path | None):
     return builtin(method_id)
 
 
+# Where --no-units leaves its answer for load(): click's per-invocation scratch space.
+NO_UNITS_KEY = "tickwright.no_units"
+
+
+def units_option(fn):
+    """--no-units for every command that loads a model; load() reads it from the context.
+
+    The flag is not a parameter of the commands: each keeps its signature, and load() is the one
+    place that decides whether the units are checked.
+    """
+
+    def remember(ctx, _param, value):
+        ctx.meta[NO_UNITS_KEY] = value
+
+    return click.option("--no-units", is_flag=True, expose_value=False, callback=remember,
+                        help="Do not check the model's units (known unit strings, every rate in "
+                             "its state's unit per second, consistent expressions).")(fn)
+
+
 def load(model_path: Path):
+    """The model file, with its units checked unless the command was given --no-units."""
     from .model import load_model
 
-    return load_model(model_path)
+    ctx = click.get_current_context(silent=True)
+    skip = bool(ctx is not None and ctx.meta.get(NO_UNITS_KEY))
+    return load_model(model_path, check_units=not skip)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
@@ -141,6 +163,7 @@ def main(verbose):
               help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
                    "local error estimate (methods with b_hat, such as bs3 and dp5).")
 @implicit_options
+@units_option
 @guarded
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
          error_estimate, newton_iterations, newton_tol, linear_solve):
@@ -186,6 +209,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
               help="A folder of your own target files, added to the shipped ones.")
 @implicit_options
+@units_option
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
           tolerance, as_json, error_estimate, plot_dir, plot_format, target_names, targets_dir,
@@ -270,6 +294,7 @@ def targets_command(targets_dir, as_json):
 @click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
 @implicit_options
+@units_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
            out_path, newton_iterations, newton_tol, linear_solve):
@@ -331,6 +356,7 @@ def methods(tableau_file, as_json):
               help="Write the stability-region pictures into this folder.")
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
+@units_option
 @guarded
 def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, as_json,
            plot_dir, plot_format):

@@ -36,6 +36,14 @@ def test_wheel_ships_templates_targets_and_examples(wheel):
     assert not any(n.startswith("tests/") for n in names)
 
 
+def test_wheel_requires_pint_so_a_plain_install_pulls_the_unit_check(wheel):
+    archive = zipfile.ZipFile(wheel)
+    (metadata,) = [n for n in archive.namelist() if n.endswith(".dist-info/METADATA")]
+    requires = [line.split(":", 1)[1].strip() for line in
+                archive.read(metadata).decode().splitlines() if line.startswith("Requires-Dist:")]
+    assert any(r.startswith("pint") and "extra ==" not in r for r in requires), requires
+
+
 def test_wheel_installs_into_a_fresh_venv_and_runs_from_another_folder(wheel, tmp_path):
     venv = tmp_path / "venv"
     # System site packages provide the dependencies (sympy, numpy, ...) without a download;

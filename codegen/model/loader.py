@@ -9,6 +9,7 @@ from pathlib import Path
 import sympy as sp
 
 from ..errors import ModelError, located
+from . import units
 from .expressions import parse_expression
 from .types import Input, Model, Output, Parameter, State, _suggest, check_finite, check_name, \
     check_range
@@ -157,8 +158,13 @@ def model_from_data(data: dict, where: str, digest: str = "") -> Model:
                  description=description, source=where, digest=digest)
 
 
-def load_model(path: str | Path) -> Model:
-    """Read and validate a model file (TOML)."""
+def load_model(path: str | Path, check_units: bool = False) -> Model:
+    """Read and validate a model file (TOML); with check_units, also check its units.
+
+    The unit check (``units.check_units``) refuses unknown unit strings, rates that are not in
+    their state's unit per second and dimensionally inconsistent expressions. The command line
+    runs it on every model it loads unless given --no-units.
+    """
     path = Path(path)
     where = str(path)
     try:
@@ -173,4 +179,7 @@ def load_model(path: str | Path) -> Model:
     except tomllib.TOMLDecodeError as exc:
         raise ModelError(f"{where}: not valid TOML: {exc} (a name declared twice in one table "
                          "is reported here too)") from None
-    return model_from_data(data, where, hashlib.sha256(raw).hexdigest())
+    model = model_from_data(data, where, hashlib.sha256(raw).hexdigest())
+    if check_units:
+        units.check_units(model)
+    return model
