@@ -257,14 +257,15 @@ def _file_note(what: str, path: str, digest: str) -> str:
 
 
 def _describe(q) -> str:
-    parts = []
-    if q.unit:
-        parts.append(f"[{q.unit}]")
-    if q.description:
-        parts.append(q.description)
+    """A field's comment: '[unit] description; range low .. high', each part only when given.
+
+    The semicolon keeps a description that ends in a number or a word apart from the range.
+    """
+    head = " ".join(part for part in (f"[{q.unit}]" if q.unit else "", q.description) if part)
+    parts = [head] if head else []
     if getattr(q, "range", None):
         parts.append(f"range {q.range[0]:g} .. {q.range[1]:g}")
-    return comment_text(" ".join(parts))
+    return comment_text("; ".join(parts))
 
 
 def reset_function(step: StepProgram, names: Names, printer: Printer) -> dict:
