@@ -39,6 +39,15 @@ def test_header_lays_out_the_api(heater):
     assert header.startswith("/*\n * " + GENERATED_MARKER)
 
 
+def test_field_comments_keep_unit_description_and_range_apart(axis):
+    header = generate(axis, builtin("rk4"), 1e-4, precision="float").text("axis.h")
+    assert "    axis_real_t i;  /* [A]; range -10 .. 10 */\n" in header
+    assert ("    axis_real_t V;  /* [V] armature voltage from the H-bridge; range -12 .. 12 */\n"
+            in header)
+    assert "    axis_real_t t;  /* [s] advanced by DT every tick */\n" in header
+    assert "    axis_real_t torque;\n" in header  # no unit, description or range: no comment
+
+
 def test_source_keeps_exact_coefficients_in_comments(heater):
     source = generate(heater, builtin("rk4"), 0.1, precision="double").text("heater.c")
     assert "#define HEATER_B1H  (0.016666666666666666)  /* b1*h = 1/60 */" in source

@@ -75,7 +75,9 @@ _SAME_UNIT = {"adds": "every term of a sum needs the same unit",
 # Functions that keep the unit of their single argument.
 _KEEP_UNIT = (sp.Abs, sp.floor, sp.ceiling)
 # pint's unit symbols that are not ASCII, spelled as a model file would write them.
-_ASCII_SYMBOLS = (("Δ", "delta_"), ("°", "deg"), ("Ω", "ohm"), ("µ", "u"), ("μ", "u"))
+_ASCII_SYMBOLS = (("\N{GREEK CAPITAL LETTER DELTA}", "delta_"), ("\N{DEGREE SIGN}", "deg"),
+                  ("\N{OHM SIGN}", "ohm"), ("\N{GREEK CAPITAL LETTER OMEGA}", "ohm"),
+                  ("\N{MICRO SIGN}", "u"), ("\N{GREEK SMALL LETTER MU}", "u"))
 
 
 @functools.cache
@@ -93,7 +95,7 @@ class Dim:
     """
 
     unit: pint.Unit
-    weight: sp.Rational = sp.Integer(0)
+    weight: sp.Rational | int = 0
 
 
 def parse_unit(text: str, where: str, item: str) -> pint.Unit:
@@ -117,8 +119,8 @@ def parse_unit(text: str, where: str, item: str) -> pint.Unit:
 
 def _unit_suggestion(name: str) -> str:
     names = sorted(n for n in dir(registry()) if not n.startswith("_") and n in registry())
-    same = [n for n in names if n.lower() == name.lower()]
-    hint = same or difflib.get_close_matches(name, names, n=1)
+    same = [n for n in names if n.lower() == name.lower() and n != name]
+    hint = same or [n for n in difflib.get_close_matches(name, names, n=2) if n != name]
     return f" (did you mean '{hint[0]}'?)" if hint else ""
 
 
@@ -336,6 +338,8 @@ class _Walker:
             self.mismatch(what, a, da, b, db, f", which differ by a factor {factor_text(1 / f)}")
 
     def mismatch(self, what, a, da: Dim, b, db: Dim, note: str) -> None:
+        if what == "adds" and sp.Add(a, b).as_ordered_terms()[0] == b:
+            a, da, b, db = b, db, a, da  # name the units in the order the sum is printed
         ua, ub = unit_text(da.unit), unit_text(db.unit)
         if what == "adds":
             text = f"'{sp.Add(a, b)}' adds {ua} and {ub}"
