@@ -81,11 +81,12 @@ def implicit_options(fn):
     fn = click.option("--linear-solve", "linear_solve", default="auto", show_default=True,
                       type=click.Choice(["auto", "elimination", "dense-lu"]),
                       help="Linear solves of implicit methods: straight-line sparse elimination, "
-                           "looped dense LU with partial pivoting, or chosen by cost.")(fn)
+                           "a looped dense LU (lower-upper) factorization with partial pivoting, "
+                           "or chosen by cost.")(fn)
     fn = click.option("--newton-tol", "newton_tol", type=click.FloatRange(min=0, max=1,
                       min_open=True, max_open=True), default=None,
-                      help="Newton tolerance of implicit methods: max |correction| / state scale "
-                           "(default 2^-16 in float, 2^-40 in double).")(fn)
+                      help="Newton tolerance of implicit methods: the largest |correction| / "
+                           "state scale (default 2^-16 in float, 2^-40 in double).")(fn)
     fn = click.option("--newton-iterations", "newton_iterations", type=click.IntRange(min=1),
                       default=20, show_default=True,
                       help="Fixed upper bound of Newton iterations per solve (implicit methods); "
@@ -146,9 +147,9 @@ def load(model_path: Path):
               help="When a C compiler fails, also print its command and its whole output "
                    "(before the one-line error).")
 def main(verbose):
-    """Turn an ODE model and a Runge-Kutta method into checked, dependency-free C for firmware.
+    """Turn an ordinary differential equation model and a Runge-Kutta method into firmware C.
 
-    Validate the generated code on the real hardware; it is not qualified for safety functions
+    The C is dependency-free and checked against an independent reference. Validate the generated code on the real hardware; it is not qualified for safety functions
     without qualified review.
     """
 

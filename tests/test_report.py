@@ -164,6 +164,21 @@ def test_methods_table_line():
     assert "mine: order 4 (decimal data: conditions to 1e-12)" in methods_table([noted])
 
 
+def test_methods_table_spells_out_the_abbreviations_its_rows_use():
+    row = dict(id="sdirk2", name="SDIRK2 (Alexander)", stages=2, order=2, embedded_order=None,
+               kind="diagonally implicit", a_stable=True, l_stable=True, real_axis_limit=None,
+               imag_axis_limit=None, source="R. Alexander, SIAM Journal 14 (1977)",
+               order_note=None)
+    lines = methods_table([row])
+    assert lines[-1] == ("abbreviations: RK Runge-Kutta; SDIRK singly diagonally implicit "
+                         "Runge-Kutta; SIAM Society for Industrial and Applied Mathematics.")
+    assert not any(line.startswith("order p(q)") for line in lines)
+    plain = dict(row, name="backward Euler", source="a book", embedded_order=None)
+    assert not any(line.startswith("abbreviations") for line in methods_table([plain]))
+    embedded = dict(plain, embedded_order=1)
+    assert any(line.startswith("order p(q): ") for line in methods_table([embedded]))
+
+
 def test_targets_table_shows_a_readable_run_command():
     assert run_command_text(("qemu", "-kernel", "{elf}")) == "qemu -kernel <program>"
     assert run_command_text(("sim", "--image={elf}")) == "sim --image=<program>"

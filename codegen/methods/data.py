@@ -13,9 +13,9 @@ from __future__ import annotations
 # Full citations, shown by `tickwright methods`.
 CITATIONS: dict[str, str] = {
     "HNW": "E. Hairer, S. P. Norsett and G. Wanner, Solving Ordinary Differential Equations I: "
-           "Nonstiff Problems, 2nd ed., Springer, 1993",
+           "Nonstiff Problems, 2nd edition, Springer, 1993",
     "HW": "E. Hairer and G. Wanner, Solving Ordinary Differential Equations II: Stiff and "
-          "Differential-Algebraic Problems, 2nd ed., Springer, 1996",
+          "Differential-Algebraic Problems, 2nd edition, Springer, 1996",
     "Ralston": "A. Ralston, Runge-Kutta methods with minimum error bounds, Mathematics of "
                "Computation 16 (1962)",
     "Shu-Osher": "C.-W. Shu and S. Osher, Efficient implementation of essentially "

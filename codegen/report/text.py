@@ -18,6 +18,16 @@ LABEL_WIDTH = 24
 VERDICT_WIDTH = 5
 # What the targets table shows where a target's run command takes the program's path.
 PROGRAM = "<program>"
+# Abbreviations in method names and citations, spelled out under the methods table when a row
+# uses them (the names and titles themselves stay as published).
+ABBREVIATIONS = (
+    ("RK", "Runge-Kutta"),
+    ("SSP", "strong stability preserving"),
+    ("SDIRK", "singly diagonally implicit Runge-Kutta"),
+    ("ROS", "Rosenbrock"),
+    ("O.D.E.", "ordinary differential equation"),
+    ("SIAM", "Society for Industrial and Applied Mathematics"),
+)
 
 
 def verdict(passed: bool) -> str:
@@ -133,8 +143,17 @@ def methods_table(rows) -> list[str]:
                      f"{_limit(r['real_axis_limit']):>10} {_limit(r['imag_axis_limit']):>10}  "
                      f"{r['name']}; {r['source']}")
     lines += [f"{r['id']}: order {r['order']} ({r['order_note']})" for r in rows if r["order_note"]]
-    lines.append("A/L: A-stable, L-stable; axis limits: where |R(z)| <= 1 ends on the negative "
-                 "real and the imaginary axis (z = h*lambda).")
+    lines.append("A, L: A-stable, L-stable (y yes, n no); real axis, imag axis: where the "
+                 "stability region |R(z)| <= 1 ends on the negative real and on the imaginary "
+                 "axis, z = h*lambda (h the step, lambda an eigenvalue of the Jacobian, R the "
+                 "method's stability function); unbounded: it never ends there.")
+    if any(r["embedded_order"] for r in rows):
+        lines.append("order p(q): order p, with an embedded solution of order q for the error "
+                     "estimate.")
+    text = " ".join(f"{r['name']} {r['source']}" for r in rows)
+    used = [f"{short} {long}" for short, long in ABBREVIATIONS if short in text]
+    if used:
+        lines.append("abbreviations: " + "; ".join(used) + ".")
     return lines
 
 
