@@ -149,8 +149,9 @@ def load(model_path: Path):
 def main(verbose):
     """Turn an ordinary differential equation model and a Runge-Kutta method into firmware C.
 
-    The C is dependency-free and checked against an independent reference. Validate the generated code on the real hardware; it is not qualified for safety functions
-    without qualified review.
+    The C is dependency-free and checked against an independent reference. Validate the
+    generated code on the real hardware; it is not qualified for safety functions without
+    qualified review.
     """
 
 
