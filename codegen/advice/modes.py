@@ -196,9 +196,15 @@ def _unique_mode_errors(coefficients, values: np.ndarray, dt: float, horizon: fl
         grid = np.concatenate([grid, grid + 1], axis=1)
         n_eps = grid * eps[:, None]
         a, b = n_eps.real, n_eps.imag
+        # Close to each other (|n eps| < 1): exp(n Re z) |exp(n eps) - 1| without cancellation.
         re = np.expm1(a) * np.cos(b) - 2.0 * np.sin(b / 2.0) ** 2
         im = np.exp(a) * np.sin(b)
-        e = np.exp(grid * z.real[:, None]) * np.hypot(re, im)
+        near = np.exp(grid * z.real[:, None]) * np.hypot(re, im)
+        # Far apart: both terms scaled by the larger modulus (no overflow when R >> exp(z)).
+        method_n, exact_n = grid * log_r[:, None], grid * z[:, None]
+        top = np.maximum(method_n.real, exact_n.real)
+        far = np.exp(top) * np.abs(np.exp(method_n - top) - np.exp(exact_n - top))
+        e = np.where(np.abs(n_eps) < 1.0, near, far)
         e = np.where(np.isnan(e), np.inf, e)
         out = np.where(wiped, np.exp(z.real), e.max(axis=1))
     return np.where(log_r.real > 1e-12, np.inf, out)
