@@ -61,8 +61,8 @@ class Modes:
 
     values: (m,) eigenvalues in 1/s (decaying or undamped, non-zero); weights: (m, nx) amplitude
     of each mode in each state as a fraction of the state's full scale; point: (m,) index of the
-    operating point the mode belongs to (the modes of one point add up); growing: how many
-    eigenvalues with Re lambda > 0 were left out.
+    operating point the mode belongs to (the modes of one point add up, and are stored next to
+    each other); growing: how many eigenvalues with Re lambda > 0 were left out.
     """
 
     values: np.ndarray
@@ -218,7 +218,6 @@ def per_mode_error(method, modes: Modes, dt: float, horizon: float) -> float:
     with np.errstate(invalid="ignore"):
         contribution = modes.weights * e[:, None]
     contribution = np.where(modes.weights == 0, 0.0, contribution)
-    worst = 0.0
-    for index in np.unique(modes.point):
-        worst = max(worst, float(np.max(contribution[modes.point == index].sum(axis=0))))
-    return worst
+    # The modes of one point are stored together (excited_modes appends them point by point).
+    starts = np.flatnonzero(np.r_[True, modes.point[1:] != modes.point[:-1]])
+    return float(np.max(np.add.reduceat(contribution, starts, axis=0)))

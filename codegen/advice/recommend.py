@@ -21,7 +21,7 @@ never advised.
 The truncation error estimate of a tick is the largest of three, each a fraction of each state's
 full scale (max(|low|, |high|) of its range; 1 for a state without a range in the per-mode
 estimate, the largest |x| of the run in the simulations):
-- per mode (modes.py): |R(h lambda)^n - exp(n h lambda)| over each mode's whole decay, from the
+- per-mode (modes.py): |R(h lambda)^n - exp(n h lambda)| over each mode's whole decay, from the
   first step (the fastest mode) to the last (the slowest; undamped modes over the horizon),
   weighted by how much a full-range step of every input and the start excite the mode;
 - the short run: the nonlinear model for SHORT_RUN_TICKS ticks with each input sweeping its range
@@ -33,9 +33,11 @@ The runs compare n ticks of one step dt with n ticks of two steps dt/2 (Richards
 error is (x_dt - x_dt/2) 2^p / (2^p - 1)); on a non-smooth model p = 1 (the order a switch leaves).
 
 The tick search goes down the ladder from the stability limit times --margin (for an A-stable
-method: from the horizon over MIN_STEPS): first the per-mode estimate (cheap, every tick), then,
-from the largest tick it allows, Newton's convergence and the runs, shrinking by the error's ratio
-to the target, at most MAX_ATTEMPTS times.
+method: from the horizon over MIN_STEPS) to MIN_TICK: first the per-mode estimate (cheap: every
+decade, then the ticks of the decade above its lowest failure, so that a huge tick at which an
+L-stable method wipes every fast mode out is not taken while smaller ones fail), then, from the
+largest tick it allows, Newton's convergence and the runs, shrinking by the error's ratio to the
+target, at most MAX_ATTEMPTS times.
 
 The simulations run the steppers of the reference stage (reference.stepper: explicit stages,
 simplified Newton on the stage equations of implicit tableaux with J frozen as in the C, the
@@ -263,7 +265,7 @@ class Estimate:
         return self.convergence is None or self.convergence.converged
 
     def _parts(self) -> list[tuple[str, float]]:
-        parts = [("per mode", self.per_mode)]
+        parts = [("per-mode", self.per_mode)]
         for name, run in (("short run", self.short), ("long run", self.long)):
             if run is not None:
                 parts.append((name, run.global_error if run.completed else math.inf))
@@ -276,7 +278,7 @@ class Estimate:
 
     @property
     def source(self) -> str:
-        """Which estimate gave the truncation error: 'per mode', 'short run' or 'long run'."""
+        """Which estimate gave the truncation error: 'per-mode', 'short run' or 'long run'."""
         return max(self._parts(), key=lambda part: part[1])[0]
 
     def meets(self, target: float, full: bool = True) -> bool:
@@ -475,9 +477,15 @@ def estimate(setting: Setting, method, dt: float, full: bool = True) -> Estimate
 
 
 def _per_mode_start(setting: Setting, method, top: float) -> tuple[float | None, Estimate]:
-    """The largest ladder tick <= top whose per-mode estimate meets the target, and so do the
-    MONOTONE_CHECKS finer ones, searched down to MIN_TICK; with the estimate at that tick, or
-    (None, the estimate at the smallest tick that failed)."""
+    """The largest ladder tick <= top whose per-mode estimate meets the target, and so do all
+    finer ticks checked, down to MIN_TICK; with the estimate at that tick, or (None, the
+    estimate at the smallest tick that failed).
+
+    The estimate is cheap but not free: every decade from top down to MIN_TICK first (an
+    L-stable method can pass at a huge tick, where it wipes the fast modes out, and fail at
+    smaller ones: such a tick is not taken), then every tick of the decade above the lowest
+    failure, each with its MONOTONE_CHECKS finer ticks.
+    """
     target = setting.target
     seen: dict[float, float] = {}
 
@@ -486,13 +494,15 @@ def _per_mode_start(setting: Setting, method, top: float) -> tuple[float | None,
             seen[dt] = per_mode_error(method, setting.modes, dt, setting.horizon)
         return seen[dt]
 
-    # Decades first (the estimate is cheap but not free), then every tick of the last decade.
-    above, dt = None, top
-    while error(dt) > target:
-        if dt <= MIN_TICK:
-            return None, Estimate(dt, error(dt))
-        above, dt = dt, max(nice_floor(dt / 10), MIN_TICK)
-    tick, failed = (top if above is None else finer(above)), None
+    decades = [top]
+    while decades[-1] > MIN_TICK:
+        decades.append(max(nice_floor(decades[-1] / 10), MIN_TICK))
+    failing = [dt for dt in decades if error(dt) > target]
+    if not failing:
+        return top, Estimate(top, error(top))
+    if failing[-1] == decades[-1]:
+        return None, Estimate(failing[-1], error(failing[-1]))
+    tick, failed = finer(failing[-1]), failing[-1]
     while tick >= MIN_TICK:
         probe, ok = tick, error(tick) <= target
         for _ in range(MONOTONE_CHECKS if ok else 0):

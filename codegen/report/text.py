@@ -194,7 +194,7 @@ def advice_rule_lines(advice) -> list[str]:
         f"{MONOTONE_CHECKS} next finer ticks of the ladder 1, 1.25, 1.5, 2, 2.5, 3, 4, 5, 6, 8 "
         f"x 10^k s",
         "  truncation error: the largest of three estimates" + switches + ":",
-        "    per mode: |R(h*lambda)^n - exp(n*h*lambda)| over each mode's whole decay (undamped "
+        "    per-mode: |R(h*lambda)^n - exp(n*h*lambda)| over each mode's whole decay (undamped "
         f"ones over the {advice.horizon:.4g} s horizon), weighted by how far a full-range step "
         "of every input and the start move it",
         f"    short run: the model for {SHORT_RUN_TICKS} ticks with each input sweeping its "
