@@ -10,9 +10,10 @@ somewhere in the envelope is no advice: the controller would stop.
 The check runs the reference stepper with the C's test (reference.steppers.Newton with the C's
 scale, limit and tolerance) for NEWTON_TICKS ticks from every operating point of the envelope
 (the initial point, the centre, the corners, the interior points), with the inputs held at that
-point's values, and along the run the check makes (verify.excitation from the initial state). The reference works in double and solves the stages of a diagonally implicit
-method as one coupled system (the C solves them one after the other), so it stands for the C's
-convergence, not for its iteration counts to the last one.
+point's values, and along the run the check makes (verify.excitation from the initial state).
+The reference works in double and solves the stages of a diagonally implicit method as one
+coupled system (the C solves them one after the other), so it stands for the C's convergence,
+not for its iteration counts to the last one.
 
 References
 ----------

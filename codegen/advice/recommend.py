@@ -101,6 +101,9 @@ MONOTONE_CHECKS = 2
 MIN_TICK = 1e-9
 # Tick periods are rounded down to these mantissas (times a power of ten), like firmware timers.
 NICE_MANTISSAS = (1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
+# A mode counts as excited (for the report) when its error, at most twice its amplitude
+# (|R^n| and |exp(n z)| are both <= 1), can reach this fraction of the truncation target.
+EXCITED_SHARE = 0.1
 # Functions whose derivative jumps: a model using them is non-smooth (order 1 at a switch).
 NON_SMOOTH = (sp.Piecewise, sp.Abs, sp.Min, sp.Max, sp.sign, sp.floor, sp.ceiling)
 
@@ -378,6 +381,11 @@ class Advice:
         """The truncation error a tick may have: TRUNCATION_SHARE of the tolerance."""
         return TRUNCATION_SHARE * self.tolerance
 
+    @property
+    def excited_floor(self) -> float:
+        """The smallest weight (fraction of full scale) of a mode that counts as excited."""
+        return EXCITED_SHARE * self.target / 2
+
     def row(self, method_id: str) -> MethodAdvice | None:
         return next((m for m in self.methods if m.id == method_id), None)
 
@@ -421,11 +429,6 @@ def candidates() -> list:
     from ..methods import builtin, builtin_ids
 
     return [builtin(i) for i in builtin_ids()]
-
-
-# A mode counts as excited when it can move a state by this fraction of the truncation target:
-# its error is at most twice its amplitude (|R^n| and |exp(n z)| are both <= 1).
-EXCITED_SHARE = 0.1
 
 
 @dataclass(frozen=True)
@@ -565,7 +568,7 @@ def _search_dt(setting: Setting, method, top: float):
 
 def _excited(modes: Modes, target: float) -> tuple[complex | None, complex | None]:
     """The fastest and the slowest decaying modes that are excited (EXCITED_SHARE)."""
-    keep = 2 * modes.excitation >= EXCITED_SHARE * target
+    keep = modes.excitation >= EXCITED_SHARE * target / 2
     values = modes.values[keep]
     if values.size == 0:
         return None, None
@@ -713,7 +716,7 @@ def _requested(setting: Setting, method, row, dt, damped, margin, warnings) -> d
         out.update(float_roundoff=roundoff(method, steps, "float"),
                    precision=precision_for(method, steps, setting.tolerance))
         if not e.meets(target):
-            warnings.append(f"--dt {dt:g} s with {method.id}: {failure_note(e, target)}")
+            warnings.append(f"with {method.id}, {failure_note(e, target)}")
     ops, _ = operations_per_step(setting.model, method)
     out["cost_per_second"] = ops / dt
     return out
@@ -738,13 +741,16 @@ def _precision_report(method, row: MethodAdvice, steps: int, tolerance: float) -
     choice = precision_for(method, steps, tolerance)
     half = share_text(ROUNDOFF_SHARE)
     if choice == "float":
-        note = (f"float32 is enough: round-off estimate {rf:.2g} of full scale over the {steps:.3g} "
-                f"ticks of the horizon (worst case {bound:.2g}) is within {half}")
+        note = (f"float32 is enough: round-off estimate {rf:.2g} of full scale over the "
+                f"{steps:.3g} ticks of the horizon (worst case {bound:.2g}) is within {half}")
     else:
         note = (f"float32 is not enough: its round-off estimate {rf:.2g} of full scale over the "
                 f"{steps:.3g} ticks of the horizon exceeds {half}; use double (estimate {rd:.2g})")
     if trunc is not None and rf > trunc:
-        note += "; in float, round-off dominates truncation, so a smaller tick would not help"
+        note += ("; float's round-off is larger than the truncation error, so a smaller tick "
+                 "would not make the result more accurate" if choice == "float" else
+                 "; float's round-off is larger than the truncation error, so no smaller tick "
+                 "would make float enough")
     return dict(float_roundoff=rf, float_roundoff_bound=bound, double_roundoff=rd,
                 truncation=trunc, choice=choice, note=note)
 

@@ -215,8 +215,9 @@ def advice_lines(advice) -> list[str]:
         fastest = eig[np.argmax(np.abs(eig))]
         lines.append(f"  fastest eigenvalue {_mode(fastest)}")
     if advice.fastest is not None:
-        lines.append(f"  excited modes: fastest {_mode(advice.fastest)}, slowest "
-                     f"{_mode(advice.slowest)}")
+        lines.append(f"  excited modes (an input step or the start moves them by at least "
+                     f"{advice.excited_floor:.2g} of full scale): fastest {_mode(advice.fastest)}, "
+                     f"slowest {_mode(advice.slowest)}")
     if advice.growing:
         lines.append(f"  {advice.growing} growing eigenvalue(s) (Re > 0: the model is unstable "
                      "there) are left out of the stability limits and the per-mode estimate")
