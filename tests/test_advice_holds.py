@@ -246,6 +246,11 @@ def test_the_issue_tick_is_rejected_and_the_advised_one_runs():
     rejected = convergence_mod.newton_converges(m, lobatto, 1.5, "float", points, 200)
     assert not rejected.converged
     assert "does not converge at dt = 1.5 s" in rejected.note()
+    # The first failing point is named by what differs from the initial point, with units.
+    items = [item.split(" = ") for item in rejected.first_failure.split(", ")]
+    known = {q.name: q.unit for q in (*m.states, *m.inputs)}
+    assert items and all(name in known for name, _ in items)
+    assert ["i_d", "20 A"] in items or ["i_d", "-20 A"] in items
     c = replay(m, lobatto, 1.5, excitation(m, 200), precision="float")
     assert c.status_name == "NO_CONVERGENCE"
     row = advice_for("drive").row("lobatto-iiic2")

@@ -50,14 +50,14 @@ def c_newton(model: Model, precision: str) -> Newton:
 @dataclass(frozen=True)
 class Convergence:
     """Whether Newton converged at one tick: from how many of the operating points it failed,
-    the index of the first one (0 = the initial point), and whether the run of check (of
-    run_ticks ticks) failed."""
+    the first of them in words (what differs from the initial point), and whether the run of
+    check (of run_ticks ticks) failed."""
 
     dt: float
     precision: str
     points: int
     failed_points: int
-    first_failure: int | None
+    first_failure: str
     run_ticks: int
     check_run_failed: bool
 
@@ -71,15 +71,27 @@ class Convergence:
             return ""
         where = []
         if self.failed_points:
-            first = "the initial point" if self.first_failure == 0 else \
-                f"operating point {self.first_failure}"
             where.append(f"from {self.failed_points} of {self.points} operating points "
-                         f"(first: {first})")
+                         f"(first: {self.first_failure})")
         if self.check_run_failed:
             where.append(f"along the {self.run_ticks}-tick run of check")
         return (f"Newton's method (simplified, at most {DEFAULT_NEWTON_ITERATIONS} iterations, "
                 f"{self.precision} tolerance) does not converge at dt = {self.dt:g} s "
                 + " and ".join(where))
+
+
+def describe(model: Model, point, initial) -> str:
+    """An operating point in words: the values that differ from the initial point."""
+    quantities = list(model.states) + list(model.inputs) + list(model.parameters)
+    values = list(point.x + point.u) + [value for _, value in point.parameters]
+    starts = list(initial.x + initial.u) + [value for _, value in initial.parameters]
+    by_name = {q.name: q for q in quantities}
+    names = [q.name for q in model.states] + [q.name for q in model.inputs] + \
+        [name for name, _ in point.parameters]
+    changed = [f"{name} = {value:g}" + (f" {by_name[name].unit}" if by_name[name].unit and
+                                          by_name[name].unit != "1" else "")
+               for name, value, start in zip(names, values, starts) if value != start]
+    return ", ".join(changed) if changed else "the initial point"
 
 
 def newton_converges(model: Model, method, dt: float, precision: str, points,
@@ -90,10 +102,10 @@ def newton_converges(model: Model, method, dt: float, precision: str, points,
     check's run. Methods without Newton iterations (explicit, Rosenbrock, exact) always converge.
     """
     if method.kind not in NEWTON_KINDS:
-        return Convergence(dt, precision, len(points), 0, None, run_ticks, False)
+        return Convergence(dt, precision, len(points), 0, "", run_ticks, False)
     newton = c_newton(model, precision)
     steppers = {}
-    failed, first = 0, None
+    failed, first = 0, ""
     with np.errstate(all="ignore"):
         for index, pt in enumerate(points):
             key = pt.parameters
@@ -106,7 +118,7 @@ def newton_converges(model: Model, method, dt: float, precision: str, points,
                 x = step(k * dt, x, u, dt).x
                 if not np.all(np.isfinite(x)):
                     failed += 1
-                    first = index if first is None else first
+                    first = first or describe(model, pt, points[0])
                     break
         run = reference.run(model, method, dt, 1, excitation(model, run_ticks),
                             stepper=reference.stepper(model, method, newton=newton, scalar=True))

@@ -540,7 +540,11 @@ def _search_dt(setting: Setting, method, top: float):
     held an advised tick down.
     """
     target = setting.target
-    order = 1 if not setting.smooth else (method.order or 1)
+    # The next tick is guessed from the error's ratio and the method's order; on a non-smooth
+    # model at most 2 (a guess only: a switch lowers the order the error shrinks with, and the
+    # runs' Richardson estimate already takes order 1 there).
+    order = method.order or 1
+    order = order if setting.smooth else min(order, 2)
     dt, last = _per_mode_start(setting, method, top)
     if dt is None:
         return None, last, None

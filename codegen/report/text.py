@@ -242,8 +242,8 @@ def advice_lines(advice) -> list[str]:
                  "floating-point operations per simulated second")
     if any(r.cost_note != "counted" for r in advice.methods):
         lines.append("  ops/tick is counted on the generated step for explicit methods; other "
-                     "kinds are estimated (LU factorization 2/3 n^3, each solve 2 n^2, the "
-                     "Newton iterations the short run took)")
+                     "kinds are estimated (LU factorization 2/3 n^3 and each solve 2 n^2 for n "
+                     "unknowns, the Newton iterations the short run took)")
     if advice.chosen:
         lines.append(f"chosen method {advice.chosen}: max stable dt "
                      f"{_seconds(advice.chosen_max_stable_dt)}")
