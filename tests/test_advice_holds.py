@@ -315,3 +315,15 @@ def test_the_piecewise_advice_holds_at_the_finer_ticks_too():
         error = float(np.max(np.abs(run.xs - exact.xs) / state_scales(m)))
         assert run.completed == len(u) and error <= TOLERANCE / 2, (dt, error)
         dt = advice_mod.finer(dt)
+
+
+def test_a_search_that_gives_up_says_so(monkeypatch):
+    found, held, seen = _search(monkeypatch, lambda dt: 1.0)
+    assert found is None and len(seen) == advice_mod.MAX_ATTEMPTS
+    m = load_model(DATA.parent.parent / "examples" / "heater.toml")
+    setting = advice_mod.Setting(m, (), None, 10.0, 1e-3, True)
+    row = advice_mod._advise_method(setting, builtin("rk4"), np.array([-0.005]), 0.8)
+    assert row.dt is None
+    assert row.note.endswith(f"; the search stops after {advice_mod.MAX_ATTEMPTS} simulated "
+                             "ticks")
+    assert "short run estimate 1 > 0.0005 = tolerance/2" in row.note

@@ -677,6 +677,8 @@ def _advise_method(setting: Setting, m, damped, margin) -> MethodAdvice:
         found, last, held = _search_dt(setting, m, top)
         if found is None:
             note = failure_note(last, setting.target)
+            if last.short is not None or last.convergence is not None:
+                note += f"; the search stops after {MAX_ATTEMPTS} simulated ticks"
         elif held is not None:
             note = "a larger tick was rejected: " + failure_note(held, setting.target)
     except TickwrightError as exc:
