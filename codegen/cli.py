@@ -346,13 +346,15 @@ def methods(tableau_file, as_json):
               help="A tick period in seconds to check for the chosen --method.")
 @click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
               default=1e-3, show_default=True,
-              help="Accuracy target: largest error over the horizon as a fraction of each "
-                   "state's full scale (max |range bound|).")
+              help="Accuracy target: largest error as a fraction of each state's full scale "
+                   "(max |range bound|); half of it goes to truncation, half to round-off. "
+                   "Pass the same value to check --tolerance.")
 @click.option("--margin", type=click.FloatRange(min=0, max=1, min_open=True), default=0.8,
               show_default=True, help="Use at most this fraction of the stability limit.")
 @click.option("--horizon", type=click.FloatRange(min=0, min_open=True),
-              help="Simulated seconds for the error estimates (default: two of the slowest "
-                   "time constants).")
+              help="Seconds the error estimates look ahead: the long run goes toward it (at "
+                   "most 2000 ticks, the output marks a run stopped there) and undamped modes "
+                   "are followed over it (default: two of the slowest time constants).")
 @click.option("--json", "as_json", is_flag=True, help="Print the advice as JSON.")
 @click.option("--plot", "plot_dir", type=click.Path(file_okay=False, path_type=Path),
               help="Write the stability-region pictures into this folder.")

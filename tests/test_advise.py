@@ -178,9 +178,12 @@ def test_heater_recommendation_runs_stable_in_c_and_meets_the_tolerance():
     assert rec["dt"] <= advice.margin * advice.row(rec["method"]).max_stable_dt
     completed, error = c_error(model, rec["method"], rec["dt"], rec["precision"], advice.horizon)
     assert completed and error <= tolerance
-    # The estimate is an estimate of this very error: same order of magnitude.
-    estimate = advice.row(rec["method"]).accuracy.global_error
-    assert 0.1 * error <= estimate <= 10 * error + 1e-6
+    # The long run covers the whole horizon here (no cap) and estimates this very error: same
+    # order of magnitude.
+    long = advice.row(rec["method"]).estimate.long
+    assert not advice.row(rec["method"]).estimate.long_capped
+    assert long.steps == int(round(advice.horizon / rec["dt"]))
+    assert 0.1 * error <= long.global_error <= 10 * error + 1e-6
 
 
 def test_float_roundoff_estimate_bounds_the_measured_float_error_and_picks_double_when_tight():
@@ -226,8 +229,16 @@ def test_advise_cli_json_has_the_promised_keys_and_exits_1_on_an_unstable_dt():
     assert math.isclose(data["max_stable_dt"], 400.0, rel_tol=1e-9)
     assert data["eigenvalues"] and all(len(v) == 2 for v in data["eigenvalues"])
     assert set(data["recommended"]) == {"method", "dt", "precision"}
+    # The rule the advice applied, as data: half the tolerance for truncation.
+    assert data["rule"]["truncation_target"] == 0.5 * data["tolerance"]
+    assert data["rule"]["long_run_ticks"] == advice_mod.LONG_RUN_TICKS
     assert data["recommended"]["precision"] in ("float", "double")
     assert data["requested"]["stable"] is False
+
+
+def test_advise_help_names_the_long_run_cap_the_advice_uses():
+    result = CliRunner().invoke(main, ["advise", "--help"])
+    assert f"most {advice_mod.LONG_RUN_TICKS} ticks" in " ".join(result.output.split())
 
 
 def test_advise_cli_error_is_one_line():

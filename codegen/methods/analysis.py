@@ -843,6 +843,14 @@ def _float_coefficients(method_or_r):
     return (np.array([float(c) for c in p]), np.array([float(c) for c in q]))
 
 
+@functools.lru_cache(maxsize=64)
+def float_stability_coefficients(method) -> tuple[np.ndarray, np.ndarray] | None:
+    """(P, Q) of R = P/Q as float arrays, lowest power first, for a method of any kind; None for
+    the exact discretization (R = exp(z)). The advice evaluates R on many h*lambda with them
+    (kept per method: a Rosenbrock method's R takes sympy a moment)."""
+    return _float_coefficients(method)
+
+
 def in_stability_region(method_or_r, z) -> np.ndarray:
     """Elementwise |R(z)| <= 1 (with 1e-12 relative slack for boundary points), as a bool array.
 

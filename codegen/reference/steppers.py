@@ -47,13 +47,16 @@ FROZEN = "frozen"
 class Newton:
     """Options of the Newton iteration on the stage equations of implicit Runge-Kutta methods.
 
-    Converged when max |correction of Z| <= tolerance * max(|y0|, |Z|); a step that does not
-    converge within max_iterations ends in NaN (the run then reports it as not completed).
+    Converged when max |correction of Z| <= tolerance * max(|y0|, |Z|); with scale (one floor
+    per state, in the state's unit) the test is the generated C's instead: max over stages and
+    states of |correction_i| / (scale_i + |y0_i|) <= tolerance. A step that does not converge
+    within max_iterations ends in NaN (the run then reports it as not completed).
     """
 
     jacobian: str
     tolerance: float
     max_iterations: int
+    scale: tuple[float, ...] = ()
 
     def __post_init__(self) -> None:
         if self.jacobian not in (EVERY_ITERATE, FROZEN):
@@ -129,6 +132,9 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
     eye = np.eye(s * n)
     frozen = newton.jacobian == FROZEN
     tiny = np.finfo(float).tiny
+    if newton.scale and len(newton.scale) != n:
+        raise ValueError(f"Newton scale has {len(newton.scale)} entries for {n} states")
+    floors = np.array(newton.scale, dtype=float)
 
     def kron(left, right):
         # np.kron for these small 2-D blocks, without its generic reshaping (the advice makes
@@ -141,7 +147,9 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
 
     def step(t, x, u, h):
         z = np.zeros((s, n))
-        x_size = float(np.max(np.abs(x)))
+        # The C's test divides each correction by its state's floor plus |y0| (every stage).
+        weights = np.tile(1.0 / (floors + np.abs(x)), s) if floors.size else None
+        x_size = 0.0 if weights is not None else float(np.abs(x).max())
         if frozen:
             j0 = jac(t, x, u)
             if not np.all(np.isfinite(j0)):
@@ -164,11 +172,17 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
                     dz = np.linalg.solve(big, -g)
                 except np.linalg.LinAlgError:
                     return _failed(n, iteration)
-            correction = float(np.max(np.abs(dz)))
+            size = np.abs(dz)
+            correction = float(size.max())
             if not math.isfinite(correction):
                 return _failed(n, iteration)
             z = z + dz.reshape(s, n)
-            if correction <= newton.tolerance * max(x_size, float(np.max(np.abs(z))), tiny):
+            if weights is not None:
+                converged = float((size * weights).max()) <= newton.tolerance
+            else:
+                converged = correction <= newton.tolerance * max(
+                    x_size, float(np.abs(z).max()), tiny)
+            if converged:
                 fs = rates(t, x, u, z, h)
                 error = None if b_hat is None else h * ((b - b_hat) @ fs)
                 return Step(x + h * (b @ fs), error, iteration)

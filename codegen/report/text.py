@@ -176,7 +176,52 @@ def targets_table(targets) -> list[str]:
 # ---- advice ---------------------------------------------------------------------------------------
 
 def _seconds(v) -> str:
-    return "unbounded" if v is None or not math.isfinite(v) else f"{v:.4g}"
+    """A time in seconds, or 'unbounded' (no unit) for an infinite one."""
+    return "unbounded" if v is None or not math.isfinite(v) else f"{v:.4g} s"
+
+
+def _mode(v) -> str:
+    """An eigenvalue with its time constant 1/|Re lambda| and, oscillating, its period."""
+    v = complex(v)
+    if v.imag == 0:
+        return f"{v.real:.4g} 1/s (time constant {1 / -v.real:.3g} s)"
+    period = f"period {2 * math.pi / abs(v.imag):.3g} s"
+    if v.real >= 0:
+        return f"{v.real:.4g}{v.imag:+.4g}j 1/s (undamped, {period})"
+    return f"{v.real:.4g}{v.imag:+.4g}j 1/s (time constant {1 / -v.real:.3g} s, {period})"
+
+
+def _long_run(e) -> str:
+    """The long run's simulated time at a row's tick, '*' when it stopped at the cap."""
+    if e is None or e.long is None:
+        return "-"
+    return f"{e.long.steps * e.dt:.3g} s" + ("*" if e.long_capped else "")
+
+
+def advice_rule_lines(advice) -> list[str]:
+    """How the advice decides: the rule and the estimates, with this model's figures."""
+    from ..advice.recommend import (LONG_RUN_TICKS, MONOTONE_CHECKS, ROUNDOFF_SHARE,
+                                    SHORT_RUN_TICKS, TRUNCATION_SHARE, share_text)
+
+    switches = (" (the model switches: Piecewise, abs, min or max; the runs assume order 1 "
+                "at a switch)") if advice.non_smooth else ""
+    return [
+        f"  rule: a tick is advised when its estimated truncation error is at most "
+        f"{advice.target:.2g} = {share_text(TRUNCATION_SHARE)} of full scale (the other "
+        f"{share_text(ROUNDOFF_SHARE)} is for round-off), Newton's method of an implicit "
+        f"Runge-Kutta method converges there over the envelope, and the same holds at the "
+        f"{MONOTONE_CHECKS} next finer ticks of the ladder 1, 1.25, 1.5, 2, 2.5, 3, 4, 5, 6, 8 "
+        f"x 10^k s",
+        "  truncation error: the largest of three estimates" + switches + ":",
+        "    per-mode: |R(h*lambda)^n - exp(n*h*lambda)| over each mode's whole decay (undamped "
+        f"ones over the {advice.horizon:.4g} s horizon), weighted by how far a full-range step "
+        "of every input and the start move it",
+        f"    short run: the model for {SHORT_RUN_TICKS} ticks with each input sweeping its "
+        "range (the run of `check`), by step doubling",
+        f"    long run: the same toward the {advice.horizon:.4g} s horizon (two of the slowest "
+        f"time constants, or --horizon), at most {LONG_RUN_TICKS} ticks; '*' marks a run "
+        "stopped there, short of the horizon: slower modes then rest on the per-mode estimate",
+    ]
 
 
 def advice_lines(advice) -> list[str]:
@@ -187,39 +232,77 @@ def advice_lines(advice) -> list[str]:
                                       if advice.ranged else " (no ranges: initial point)")]
     if len(eig):
         fastest = eig[np.argmax(np.abs(eig))]
-        lines.append(f"  fastest eigenvalue {fastest.real:.4g}{fastest.imag:+.4g}j 1/s; horizon "
-                     f"{advice.horizon:.4g} s; tolerance {advice.tolerance:g} of full scale; "
-                     f"margin {advice.margin:g}")
-    lines.append(f"  {'method':<18} {'kind':<20} {'max stable dt':>13} {'dt':>10} "
-                 f"{'error':>9} {'ops/step':>8} {'ops/s':>10}")
+        lines.append(f"  fastest eigenvalue {_mode(fastest)}")
+    if advice.fastest is not None:
+        lines.append(f"  excited modes (an input step or the start moves them by at least "
+                     f"{advice.excited_floor:.2g} of full scale): fastest {_mode(advice.fastest)}, "
+                     f"slowest {_mode(advice.slowest)}")
+    if advice.growing:
+        lines.append(f"  {advice.growing} growing eigenvalue(s) (Re > 0: the model is unstable "
+                     "there) are left out of the stability limits and the per-mode estimate")
+    lines.append(f"  tolerance {advice.tolerance:g} of each state's full scale; horizon "
+                 f"{advice.horizon:.4g} s; margin {advice.margin:g} of the stability limit")
+    lines += advice_rule_lines(advice)
+    lines.append(f"  {'method':<18} {'kind':<20} {'max stable dt':>13} {'dt':>9} "
+                 f"{'error':>8} {'from':<9} {'long run':>10} {'ops/tick':>8} {'ops/s':>9}")
     for r in advice.methods:
-        err = r.accuracy.global_error if (r.accuracy and r.dt) else None
+        e = r.estimate if r.dt else None
         cost = r.cost_per_second
         lines.append(f"  {r.id:<18} {r.kind:<20} {_seconds(r.max_stable_dt):>13} "
-                     f"{'-' if r.dt is None else f'{r.dt:g}':>10} "
-                     f"{'-' if err is None else f'{err:.2g}':>9} {r.ops_per_step:>8} "
-                     f"{'-' if cost is None else f'{cost:.3g}':>10}"
+                     f"{'-' if r.dt is None else f'{r.dt:g} s':>9} "
+                     f"{'-' if e is None else f'{e.truncation:.2g}':>8} "
+                     f"{'-' if e is None else e.source:<9} {_long_run(e):>10} "
+                     f"{r.ops_per_step:>8} {'-' if cost is None else f'{cost:.3g}':>9}"
                      + (f"  ({r.note})" if r.note else ""))
+    lines.append("  columns: max stable dt = the largest stable tick ('unbounded' for an A-stable "
+                 "method); dt = the advised tick; error = its estimated truncation error, a "
+                 "fraction of full scale, and the estimate it comes from; long run = the time "
+                 "it simulated; ops/tick = floating-point operations per tick; ops/s = "
+                 "floating-point operations per simulated second")
+    if any(r.cost_note != "counted" for r in advice.methods):
+        lines.append("  ops/tick is counted on the generated step for explicit methods; other "
+                     "kinds are estimated (LU factorization 2/3 n^3 and each solve 2 n^2 for n "
+                     "unknowns, the Newton iterations the short run took)")
     if advice.chosen:
         lines.append(f"chosen method {advice.chosen}: max stable dt "
-                     f"{_seconds(advice.chosen_max_stable_dt)} s")
+                     f"{_seconds(advice.chosen_max_stable_dt)}")
     if advice.requested:
         q = advice.requested
         text = f"requested dt {q['dt']:g} s with {q['method']}: " + \
             ("stable" if q["stable"] else "UNSTABLE")
         if q.get("global_error") is not None:
-            text += (f", estimated error {q['global_error']:.2g} of full scale, "
-                     f"{q['precision']} precision")
+            text += (f", estimated truncation error {q['global_error']:.2g} of full scale "
+                     f"({q['error_source']}), "
+                     + ("meets the rule" if q["meets_tolerance"] else "does not meet the rule")
+                     + f", {q['precision']} precision")
         lines.append(text)
     if advice.recommended:
         r = advice.recommended
-        lines.append(f"recommended: {r['method']} at dt = {r['dt']:g} s in {r['precision']}")
+        row = advice.row(r["method"])
+        e = row.estimate
+        lines.append(f"recommended: {r['method']} at dt = {r['dt']:g} s in {r['precision']} "
+                     f"(estimated truncation error {e.truncation:.2g} of full scale, from the "
+                     f"{e.source} estimate)")
+        lines.append(f"  its runs: short {e.short.steps} ticks = {e.short.steps * e.dt:.3g} s"
+                     + _time_constants(e.short.steps * e.dt, advice.fastest)
+                     + f"; long {e.long.steps} ticks = {e.long.steps * e.dt:.3g} s of the "
+                     f"{advice.horizon:.4g} s horizon"
+                     + (" (stopped at the cap)" if e.long_capped else ""))
+        lines.append(f"  confirm it: tickwright check <model file> --method {r['method']} "
+                     f"--dt {r['dt']:g} --precision {r['precision']} --tolerance "
+                     f"{advice.tolerance:g}")
     if advice.precision:
         lines.append(f"precision: {advice.precision['note']}")
-    if any(r.cost_note != "counted" for r in advice.methods):
-        lines.append("ops/step: counted on the generated step for explicit methods; other kinds "
-                     "are estimated (LU 2/3 n^3, solve 2 n^2, Newton iterations as measured)")
     return lines
+
+
+def _time_constants(span: float, mode) -> str:
+    """How many time constants (and periods) of the mode a run of span seconds covers."""
+    if mode is None or complex(mode).real >= 0:
+        return ""
+    v = complex(mode)
+    periods = "" if v.imag == 0 else f", {span * abs(v.imag) / (2 * math.pi):.3g} periods"
+    return f" ({span * -v.real:.3g} time constants{periods} of the fastest excited mode)"
 
 
 def advice_warnings(advice) -> list[str]:
