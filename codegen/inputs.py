@@ -101,8 +101,11 @@ def parameter_settings(model: Model, pairs) -> dict[str, float]:
                 raise CheckError(f"{where}: parameter '{name}' is not tunable (its value is "
                                  f"baked into the C); set parameters.{name}.tunable = true in "
                                  "the model, or change its value there")
-            hint = difflib.get_close_matches(name, tunable, n=1)
-            known = f"did you mean '{hint[0]}'?" if hint else \
+            hint = difflib.get_close_matches(name, tunable, n=1) or \
+                difflib.get_close_matches(name, [p.name for p in model.parameters], n=1)
+            fixed = f" It is not tunable: set parameters.{hint[0]}.tunable = true in the model" \
+                if hint and hint[0] not in tunable else ""
+            known = f"did you mean '{hint[0]}'?{fixed}" if hint else \
                 f"the tunable parameters are {', '.join(tunable)}" if tunable else \
                 "the model has no tunable parameter"
             raise CheckError(f"{where}: no tunable parameter '{name}' ({known})")

@@ -320,6 +320,8 @@ def test_check_gives_the_reference_the_same_per_tick_parameters(tmp_path):
     ("R_th=3", "parameter 'R_th' is not tunable (its value is baked into the C); set "
                "parameters.R_th.tunable = true"),
     ("C_t=100", "no tunable parameter 'C_t' (did you mean 'C_th'?)"),
+    ("R_t=3", "no tunable parameter 'R_t' (did you mean 'R_th'? It is not tunable: set "
+              "parameters.R_th.tunable = true"),
     ("C_th", "expected NAME=VALUE"),
     ("C_th=warm", "'warm' is not a number"),
 ])
