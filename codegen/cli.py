@@ -110,20 +110,20 @@ def set_option(fn):
                              "of --inputs named like one sets it tick by tick.")(fn)
 
 
-def stability_gate(model, method, dt, substeps, model_path, force_run: bool,
-                   warn_only: bool = False, with_limit: bool = False):
+def gate_before_run(model, method, dt, substeps, model_path, force_run: bool,
+                    warn_only: bool = False, with_limit: bool = False):
     """The stability gate before anything is built: a warning (emit), else one error line and
     exit 1 unless --force-run; returns the advice.gate.StabilityGate."""
-    from .advice.gate import stability_gate as decide
+    from .advice.gate import stability_gate
 
-    gate = decide(model, method, dt, substeps, with_limit=with_limit)
+    gate = stability_gate(model, method, dt, substeps, with_limit=with_limit)
     if gate.passed:
         return gate
     fix = (f"use --dt {gate.limit:.3g} or less, more --substeps or an A-stable method "
            "('tickwright advise' compares them)")
     if warn_only:
-        click.echo(f"tickwright: warning: {model_path}: {gate.summary}; the C diverges on such "
-                   f"modes: {fix}", err=True)
+        click.echo(f"tickwright: warning: {model_path}: {gate.summary}; the C grows without "
+                   f"bound on such modes: {fix}", err=True)
     elif not force_run:
         fail(f"{model_path}: {gate.summary}; {fix}, or --force-run to run anyway")
     return gate
@@ -196,7 +196,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
-    stability_gate(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
+    gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
                        **options)
     for path in csource.write(out_dir, force=force):
@@ -276,8 +276,8 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     parameters = parameter_table(model, ticks, settings, columns, str(inputs_path))
     sources = tuple((p.name, COLUMN if p.name in columns else settings[p.name])
                     for p in model.tunable if p.name in columns or p.name in settings)
-    gate = stability_gate(with_values(model, settings), method, dt, substeps, model_path,
-                          force_run, with_limit=True)
+    gate = gate_before_run(with_values(model, settings), method, dt, substeps, model_path,
+                           force_run, with_limit=True)
     targets = [load_target(name, targets_dir) for name in target_names]
     if precision == "both" and targets:
         precisions = tuple(sorted({t.default_precision for t in targets}))
@@ -368,7 +368,7 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
     else:
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)
     parameters = parameter_table(model, len(inputs), settings, columns, str(inputs_path))
-    stability_gate(with_values(model, settings), method, dt, substeps, model_path, force_run)
+    gate_before_run(with_values(model, settings), method, dt, substeps, model_path, force_run)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     result = run_replay(model, method, dt, inputs, substeps, precision, parameters=parameters,
                         **options)

@@ -125,8 +125,7 @@ def run_built(built, model: Model, inputs, x0=None, parameters=None) -> Replay:
             setattr(ctx, s.name, float(v))
     if parameters is None:
         parameters = np.tile([float(getattr(ctx, p.name)) for p in model.tunable], (n, 1))
-    params = np.asarray(parameters, dtype=np.float64).reshape(n, len(model.tunable)) \
-        if np.size(parameters) == n * len(model.tunable) else np.asarray(parameters)
+    params = np.asarray(parameters, dtype=np.float64)
     if params.shape != (n, len(model.tunable)):
         raise CheckError(f"{model.name}: tunable parameter values have shape "
                          f"{np.shape(parameters)}, expected ({n}, {len(model.tunable)}) with the "
