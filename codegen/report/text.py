@@ -100,8 +100,8 @@ def inputs_line(r) -> str:
 
 
 def stability_line(g) -> str:
-    """The line of one advice.gate.StabilityGate."""
-    return row("stability", g.passed, g.summary)
+    """The line of one advice.gate.StabilityGate (no verdict when it could not decide)."""
+    return row("stability", g.passed if g.decided else None, g.summary)
 
 
 def estimate_line(e) -> str:
