@@ -366,3 +366,14 @@ def test_an_accurate_piecewise_model_passes_check(write_model):
     assert "  order                          order not measurable (non-smooth model): " \
            "Piecewise in states.h.rate" in lines
     assert lines[-1] == "verdict: PASS"
+
+
+def test_a_gate_that_cannot_decide_says_so_without_a_verdict(write_model):
+    # 1/x at x = 0: df/dx = -1/x^2 - 1 is not finite at the only operating point.
+    from codegen.report.text import stability_line
+
+    model = load_model(write_model('name = "pole"\n[states]\nx = { initial = 0.0, rate = '
+                                   '"1/x - x" }\n'))
+    gate = stability_gate(model, builtin("rk4"), 0.1)
+    assert gate.passed and not gate.decided and "not finite" in gate.basis
+    assert stability_line(gate).split()[:2] == ["stability", "dt"]  # no ok, no FAIL
