@@ -53,9 +53,11 @@ def run_loop_context(csource: CSource, model) -> dict:
         header=csource.header_name, signature=signature, ctx_t=f"{p}_ctx_t",
         real_t=f"{p}_real_t", outputs_t=f"{p}_outputs_t", time=model.time,
         advance_function=f"{p}_advance", outputs_function=f"{p}_outputs",
-        nx=model.nx, nu=len(model.inputs), ny=len(model.outputs),
+        nx=model.nx, nu=len(model.inputs) + len(model.tunable), ny=len(model.outputs),
         states=list(enumerate(s.name for s in model.states)),
-        inputs=list(enumerate(u.name for u in model.inputs)),
+        # The tunable parameters follow the inputs in each tick's row, so a run can change them
+        # tick by tick like the firmware may (run.run_built fills them).
+        inputs=list(enumerate([u.name for u in model.inputs] + [p.name for p in model.tunable])),
         outputs=list(enumerate(o.name for o in model.outputs)))
 
 

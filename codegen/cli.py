@@ -8,11 +8,14 @@ from pathlib import Path
 import click
 
 from . import __version__
-from .errors import BuildError, MethodError, TickwrightError
+from .errors import BuildError, CheckError, MethodError, TickwrightError
 
 PRECISION_CHOICE = click.Choice(["float", "double"])
 # Ticks of a replay given neither --inputs nor --steps: a short look at the model's start.
 DEFAULT_REPLAY_TICKS = 100
+# Ticks of a check's cross-check without --inputs: long enough for the input sweep to cover each
+# range, short enough to check in seconds.
+DEFAULT_CHECK_TICKS = 200
 
 
 def fail(message: str) -> None:
@@ -94,6 +97,39 @@ def implicit_options(fn):
     return fn
 
 
+def force_run_option(fn):
+    """--force-run: run even when the tick is beyond the stability limit (check, replay)."""
+    return click.option("--force-run", is_flag=True,
+                        help="Run even when dt is beyond the method's stability limit over the "
+                             "model's envelope (by default the command stops at once).")(fn)
+
+
+def set_option(fn):
+    """--set NAME=VALUE for the tunable parameters of a run (check, replay)."""
+    return click.option("--set", "set_pairs", multiple=True, metavar="NAME=VALUE",
+                        help="Set a tunable parameter for the whole run (repeatable); a column "
+                             "of --inputs named like one sets it tick by tick.")(fn)
+
+
+def gate_before_run(model, method, dt, substeps, model_path, force_run: bool,
+                    warn_only: bool = False, with_limit: bool = False):
+    """The stability gate before anything is built: a warning (emit), else one error line and
+    exit 1 unless --force-run; returns the advice.gate.StabilityGate."""
+    from .advice.gate import stability_gate
+
+    gate = stability_gate(model, method, dt, substeps, with_limit=with_limit)
+    if gate.passed:
+        return gate
+    fix = (f"use --dt {gate.limit:.3g} or less, more --substeps or an A-stable method "
+           "('tickwright advise' compares them)")
+    if warn_only:
+        click.echo(f"tickwright: warning: {model_path}: {gate.summary}; the C grows without "
+                   f"bound on such modes: {fix}", err=True)
+    elif not force_run:
+        fail(f"{model_path}: {gate.summary}; {fix}, or --force-run to run anyway")
+    return gate
+
+
 def generation_options(method, newton_iterations, newton_tol, linear_solve) -> dict:
     """The implicit-solver options for generate(); an explicit method takes none."""
     if method.is_explicit:
@@ -141,6 +177,16 @@ def load(model_path: Path):
     return load_model(model_path, check_units=not skip)
 
 
+def with_values(model, settings: dict):
+    """The model with the --set values as its parameters' values (what the gate starts from)."""
+    from dataclasses import replace
+
+    if not settings:
+        return model
+    return replace(model, parameters=tuple(replace(p, value=settings.get(p.name, p.value))
+                                           for p in model.parameters))
+
+
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="tickwright")
 @click.option("--verbose", is_flag=True,
@@ -175,6 +221,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
                        **options)
     for path in csource.write(out_dir, force=force):
@@ -190,8 +237,15 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
               help="Method steps per tick.")
 @click.option("--precision", type=click.Choice(["float", "double", "both"]), default="both",
               show_default=True, help="Which builds to cross-check.")
-@click.option("--ticks", type=click.IntRange(min=1), default=200, show_default=True,
-              help="Length of the cross-check run.")
+@click.option("--ticks", type=click.IntRange(min=1), default=None,
+              help=f"Length of the cross-check run [default: {DEFAULT_CHECK_TICKS}, or every "
+                   "row of --inputs].")
+@click.option("--inputs", "inputs_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Run the cross-check and the accuracy check on this log instead of the input "
+                   "sweep: CSV with header t,<inputs>[,<tunable parameters>], one row per tick "
+                   "(as for replay).")
+@set_option
+@force_run_option
 @click.option("--no-order", is_flag=True, help="Skip the order study.")
 @click.option("--tolerance", type=click.FloatRange(min=0, min_open=True), default=1e-2,
               show_default=True,
@@ -213,24 +267,43 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @implicit_options
 @units_option
 @guarded
-def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
-          tolerance, as_json, error_estimate, plot_dir, plot_format, target_names, targets_dir,
-          newton_iterations, newton_tol, linear_solve):
+def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, inputs_path,
+          set_pairs, force_run, no_order, tolerance, as_json, error_estimate, plot_dir,
+          plot_format, target_names, targets_dir, newton_iterations, newton_tol, linear_solve):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
-    With --target, also cross-compile it for a microcontroller, run it on the emulator, compare
-    it bit for bit with the host build and report flash, stack and instructions per tick.
+    With --inputs, the cross-check and the accuracy check run on a recorded log of inputs. With
+    --target, also cross-compile it for a microcontroller, run it on the emulator, compare it
+    bit for bit with the host build and report flash, stack and instructions per tick.
+    Stops at once when dt is beyond the stability limit (unless --force-run).
     Exit status 1 when any check fails.
     """
+    from .inputs import parameter_settings, parameter_table, read_log
     from .methods import tolerance_note
     from .report import CheckOutcome
     from .report.json import check_data, json_text
     from .report.text import check_lines
     from .targets import check_on_targets, load_target
-    from .verify import check as run_check
+    from .verify import COLUMN, SWEEP, check as run_check
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    if (inputs_path or set_pairs) and (error_estimate or target_names):
+        raise click.UsageError("--inputs and --set apply to the cross-check and the accuracy "
+                               "check; run --error-estimate and --target without them")
+    settings = parameter_settings(model, set_pairs)
+    inputs, columns, scenario = None, {}, SWEEP
+    if inputs_path:
+        log = read_log(inputs_path, model, ticks)
+        if not len(log.inputs):
+            raise CheckError(f"{inputs_path}: no rows after the header; write one row per tick")
+        inputs, columns, scenario = log.inputs, log.parameters, inputs_path.name
+    ticks = len(inputs) if inputs is not None else ticks or DEFAULT_CHECK_TICKS
+    parameters = parameter_table(model, ticks, settings, columns, str(inputs_path))
+    sources = tuple((p.name, COLUMN if p.name in columns else settings[p.name])
+                    for p in model.tunable if p.name in columns or p.name in settings)
+    gate = gate_before_run(with_values(model, settings), method, dt, substeps, model_path,
+                           force_run, with_limit=True)
     targets = [load_target(name, targets_dir) for name in target_names]
     if precision == "both" and targets:
         precisions = tuple(sorted({t.default_precision for t in targets}))
@@ -240,8 +313,10 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
-    report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
-                       progress=say, accuracy=tolerance, options=options)
+    report = run_check(model, method, dt, substeps, precisions, ticks, inputs,
+                       order=not no_order, progress=say, accuracy=tolerance, options=options,
+                       parameters=parameters, scenario=scenario, parameter_sources=sources,
+                       stability=gate)
     estimates = ()
     if error_estimate:
         from .verify.estimate import check_error_estimate
@@ -254,7 +329,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
 
         say(f"pictures into {plot_dir}")
         pictures = tuple(check_pictures(model, method, dt, substeps, precisions, ticks, report,
-                                        plot_dir, plot_format, options))
+                                        plot_dir, plot_format, options, inputs, parameters))
     target_reports = tuple(check_on_targets(model, method, dt, substeps, precisions, ticks,
                                             targets, options, progress=say))
     outcome = CheckOutcome(report, method.name, estimates, target_reports, pictures,
@@ -295,24 +370,35 @@ def targets_command(targets_dir, as_json):
                    f"{DEFAULT_REPLAY_TICKS}).")
 @click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
+@set_option
+@force_run_option
 @implicit_options
 @units_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path, newton_iterations, newton_tol, linear_solve):
-    """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV."""
-    from .inputs import held_defaults, read_input_log
+           out_path, set_pairs, force_run, newton_iterations, newton_tol, linear_solve):
+    """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV.
+
+    Stops at once when dt is beyond the stability limit (unless --force-run).
+    """
+    from .inputs import held_defaults, parameter_settings, parameter_table, read_log
     from .report.text import replay_done_line, replay_stop_message
     from .run import replay as run_replay
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    settings = parameter_settings(model, set_pairs)
+    columns = {}
     if inputs_path:
-        inputs = read_input_log(inputs_path, model, steps)
+        log = read_log(inputs_path, model, steps)
+        inputs, columns = log.inputs, log.parameters
     else:
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)
+    parameters = parameter_table(model, len(inputs), settings, columns, str(inputs_path))
+    gate_before_run(with_values(model, settings), method, dt, substeps, model_path, force_run)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
-    result = run_replay(model, method, dt, inputs, substeps, precision, **options)
+    result = run_replay(model, method, dt, inputs, substeps, precision, parameters=parameters,
+                        **options)
     result.save_csv(out_path)
     if not result.finished:
         fail(replay_stop_message(inputs_path or model_path, out_path, result, dt))

@@ -101,11 +101,13 @@ class Replay:
         return path
 
 
-def run_built(built, model: Model, inputs, x0=None) -> Replay:
+def run_built(built, model: Model, inputs, x0=None, parameters=None) -> Replay:
     """Run the built C over inputs in one call of the test-only loop.
 
     inputs: (ticks, nu) array, one row per tick, columns in the order of model.inputs (held during
-    the tick); x0: initial states instead of the model's (nx values), or None.
+    the tick); x0: initial states instead of the model's (nx values), or None; parameters:
+    (ticks, len(model.tunable)) values of the tunable parameters set before each tick, or None
+    for the values the reset function sets.
     """
     ffi, lib = built.ffi, built.lib
     dtype = np.float32 if built.csource.precision == FLOAT else np.float64
@@ -116,15 +118,22 @@ def run_built(built, model: Model, inputs, x0=None) -> Replay:
         raise CheckError(f"{model.name}: inputs have shape {rows_in.shape}, expected (ticks, {nu})"
                          f" with the columns {', '.join(u.name for u in model.inputs) or '(none)'}")
     n = len(rows_in)
-    u = np.ascontiguousarray(rows_in, dtype=dtype).reshape(-1)
-    ts = np.zeros(n + 1, dtype=dtype)
-    xs = np.zeros((n + 1) * nx, dtype=dtype)
-    ys = np.zeros((n + 1) * ny, dtype=dtype)
     ctx = ffi.new(f"{model.name}_ctx_t *")
     getattr(lib, f"{model.name}_reset")(ctx)
     if x0 is not None:
         for s, v in zip(model.states, x0):
             setattr(ctx, s.name, float(v))
+    if parameters is None:
+        parameters = np.tile([float(getattr(ctx, p.name)) for p in model.tunable], (n, 1))
+    params = np.asarray(parameters, dtype=np.float64)
+    if params.shape != (n, len(model.tunable)):
+        raise CheckError(f"{model.name}: tunable parameter values have shape "
+                         f"{np.shape(parameters)}, expected ({n}, {len(model.tunable)}) with the "
+                         f"columns {', '.join(p.name for p in model.tunable) or '(none)'}")
+    u = np.ascontiguousarray(np.hstack([rows_in, params]), dtype=dtype).reshape(-1)
+    ts = np.zeros(n + 1, dtype=dtype)
+    xs = np.zeros((n + 1) * nx, dtype=dtype)
+    ys = np.zeros((n + 1) * ny, dtype=dtype)
     status = ffi.new("int *")
 
     def buffer(arr):
@@ -141,21 +150,26 @@ def run_built(built, model: Model, inputs, x0=None) -> Replay:
 
 
 def replay(model: Model, method, dt: float, inputs, substeps: int = 1,
-           precision: str = "float", x0=None, **implicit_options) -> Replay:
+           precision: str = "float", x0=None, parameters=None, **implicit_options) -> Replay:
     """Generate, build and run the C of model and method over inputs ((ticks, nu) array).
 
+    parameters: per-tick values of the tunable parameters as for run_built, or None;
     implicit_options (newton_iterations, newton_tol, solver) as for pipeline.generate.
     """
     from .build import build
     from .pipeline import generate
 
     csource = generate(model, method, dt, substeps, precision, **implicit_options)
-    return run_built(build(csource, model), model, inputs, x0)
+    return run_built(build(csource, model), model, inputs, x0, parameters)
 
 
-def run_c(built, model: Model, inputs, x0=None) -> Trajectory:
+def run_c(built, model: Model, inputs, x0=None, parameters=None) -> Trajectory:
     """The states of run_built as a Trajectory of ticks + 1 rows (NaN after the failed tick)."""
-    run = run_built(built, model, inputs, x0)
+    return trajectory(run_built(built, model, inputs, x0, parameters), model)
+
+
+def trajectory(run: Replay, model: Model) -> Trajectory:
+    """The states of a Replay as a Trajectory of ticks + 1 rows (NaN after the failed tick)."""
     rows = run.completed + 1
     ts = np.zeros(run.ticks + 1)
     xs = np.full((run.ticks + 1, model.nx), np.nan)

@@ -77,11 +77,12 @@ def test_check_text_names_each_check():
 def test_check_fails_with_exit_1_when_the_step_is_unstable():
     # The axis' electrical pole is about -2970/s: Euler at 1 ms has h*lambda = -2.97 < -2
     # (forward Euler's real-axis limit, from |1 + z| <= 1; common practice, no source), so the run
-    # diverges.
+    # diverges: the stability gate stops the check before anything is built, in one line.
     result = run("check", AXIS, "--method", "euler", "--dt", "1e-3", "--precision", "double",
                  "--ticks", "2000", "--no-order")
-    assert result.exit_code == 1
-    assert "verdict: FAIL" in result.stdout
+    assert result.exit_code == 1 and result.stdout == ""
+    [line] = result.output.splitlines()
+    assert "beyond euler's stability limit" in line and "--force-run" in line
 
 
 def test_replay_writes_one_row_per_tick_with_round_trip_values(tmp_path):

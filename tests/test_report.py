@@ -14,6 +14,7 @@ from codegen.report.text import (check_lines, estimate_line, methods_table, repl
                                  targets_table)
 from codegen.run import Replay
 from codegen.targets import TargetReport, load_target
+from codegen.advice.gate import StabilityGate
 from codegen.verify import CheckReport, CrossCheck, OrderStudy
 from codegen.verify.estimate import EstimateCheck
 
@@ -22,11 +23,20 @@ from conftest import ROOT
 STRICT = "gcc -std=c99 -Wall ... -Werror -ffp-contract=off -O2 -c axis.c -o out.o"
 
 
-def cross(precision, difference, bound, error, passed=True, completed=200):
+def cross(precision, difference, bound, error, passed=True, completed=200, status="OK",
+          worst=(154, 108)):
     return CrossCheck(precision=precision, ticks=200, completed=completed,
                       max_difference=difference, tolerance=bound, worst_state="i",
                       error_vs_high_accuracy=error, accuracy_tolerance=0.01, accurate=passed,
-                      passed=passed)
+                      passed=passed, status=status, compared=completed,
+                      accuracy_compared=completed, worst_tick=worst[0], accuracy_state="i",
+                      accuracy_tick=worst[1])
+
+
+# The axis' gate at rk4 and 0.1 ms: its fastest eigenvalue sets the limit.
+AXIS_GATE = StabilityGate(method="rk4", dt=1e-4, substeps=1, passed=True, decided=True,
+                          basis="dense eigenvalues at 50 operating points",
+                          eigenvalue=complex(-2983, 0), limit=0.000934)
 
 
 def axis_report(passed=True, order=True) -> CheckReport:
@@ -35,8 +45,9 @@ def axis_report(passed=True, order=True) -> CheckReport:
                        True) if order else None
     return CheckReport(method="rk4", model="axis", dt=1e-4, substeps=1, strict_compile=STRICT,
                        cross_checks=(cross("float", 6.71e-07, 0.00238, 4.72e-06, passed),
-                                     cross("double", 8.88e-16, 4.44e-12, 4.7e-06)),
-                       order=study, passed=passed)
+                                     cross("double", 8.88e-16, 4.44e-12, 4.7e-06,
+                                           worst=(52, 107))),
+                       order=study, passed=passed, stability=AXIS_GATE)
 
 
 def readme_check_block() -> list[str]:
@@ -54,23 +65,33 @@ def readme_check_block() -> list[str]:
 
 def test_check_lines_are_the_readme_s_example():
     lines = check_lines(CheckOutcome(axis_report(), "classical RK4"))
-    assert len(lines) == 8
+    assert len(lines) == 10
     assert lines == readme_check_block()
 
 
-def test_a_run_that_stopped_says_so_under_its_cross_check():
+@pytest.mark.parametrize("status, meaning", [
+    ("NO_CONVERGENCE", "the implicit solve did not converge within its iteration limit"),
+    ("NONFINITE", "a result was NaN or infinite (bad input or overflow)")])
+def test_a_run_that_stopped_names_its_status_on_its_own_fail_line(status, meaning):
+    # The figures over the 120 ticks taken are inside their bounds: those lines say ok, and the
+    # stop alone fails the check.
     report = axis_report(passed=False, order=False)
-    bad = cross("float", 1.5, 0.00238, 0.5, passed=False, completed=120)
-    report = CheckReport(**{**report.__dict__, "cross_checks": (bad,)})
+    bad = cross("float", 1e-6, 0.00238, 1e-3, passed=False, completed=120, status=status,
+                worst=(37, 120))
+    bad = CrossCheck(**{**bad.__dict__, "accurate": True})
+    report = CheckReport(**{**report.__dict__, "cross_checks": (bad,),
+                            "order_skipped": "not run: the float run stopped at tick 121"})
     lines = check_lines(CheckOutcome(report, "classical RK4"))
-    assert lines[2:] == [
-        "  cross-check float        FAIL  max |C - reference| = 1.5 in i (bound 0.00238) over "
-        "200 ticks",
-        "  accuracy float           FAIL  max |C - solve_ivp| = 50 % of the state's scale "
-        "(target 1 %)",
-        "                                 stopped after 120 ticks: a state became non-finite (the "
-        "step is unstable or the inputs are out of range)",
+    assert lines[4:] == [
+        "  cross-check float        ok    max |C - reference| = 1e-06 (bound 0.00238) in i at "
+        "tick 37, t = 0.0037 s; 120 ticks",
+        "  accuracy float           ok    max |C - solve_ivp| = 0.1 % of the state's scale "
+        "(target 1 %) in i at tick 120, t = 0.012 s",
+        f"  run float                FAIL  the C stopped at tick 121, t = 0.0121 s: status "
+        f"{status}: {meaning}",
+        "  order                          not run: the float run stopped at tick 121",
         "verdict: FAIL"]
+    assert not any("non-finite" in line for line in lines)
 
 
 def test_an_order_study_without_a_measured_order_shows_its_note():

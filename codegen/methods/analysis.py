@@ -922,13 +922,8 @@ def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
 
     method: a Tableau, a linearly implicit method, or the exact discretization (always stable
     for decaying modes). eigenvalues: complex values (1/s), one or a whole envelope of them; the
-    result is in seconds. The eigenvalues are reduced to one per ray direction (ray_directions);
-    an A-stable method is unbounded when every Re lambda <= 0; otherwise each ray h*lambda,
-    h >= 0, is followed outward from 0 to the first point where |R| = 1 is crossed, exactly
-    (ray_limit): the most restrictive ray by a numerical scan first, every other ray only as far
-    as the limit found so far (an exact root count), so the scan decides nothing. margin in (0, 1] is a safety factor. Returns math.inf if every ray stays stable,
-    0.0 if some h*lambda leaves the region at once (for example Re lambda > 0, or an explicit
-    method with lambda on the imaginary axis).
+    result is in seconds (stability_limit, which also names the eigenvalue that sets it). margin
+    in (0, 1] is a safety factor.
 
     References
     ----------
@@ -937,6 +932,26 @@ def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     """
     if not 0 < margin <= 1:
         raise ValueError("margin must be in (0, 1]")
+    return stability_limit(method, eigenvalues)[0] * margin
+
+
+def stability_limit(method, eigenvalues) -> tuple[float, complex | None]:
+    """The largest h with h*lambda in the stability region for every eigenvalue, and the
+    eigenvalue (its ray's representative, Im >= 0) that sets it (None when none does).
+
+    The eigenvalues are reduced to one per ray direction (ray_directions); an A-stable method is
+    unbounded when every Re lambda <= 0; otherwise each ray h*lambda, h >= 0, is followed
+    outward from 0 to the first point where |R| = 1 is crossed, exactly (ray_limit): the most
+    restrictive ray by a numerical scan first, every other ray only as far as the limit found so
+    far (an exact root count), so the scan decides nothing. Returns math.inf if every ray stays
+    stable, 0.0 if some h*lambda leaves the region at once (for example Re lambda > 0, or an
+    explicit method with lambda on the imaginary axis).
+
+    References
+    ----------
+    HW, section IV.2 (stability domain), IV.3 (A-stability); common practice, no source (step
+    size from eigenvalues).
+    """
     values = np.atleast_1d(np.asarray(eigenvalues, dtype=complex))
     bad = values[~np.isfinite(values)]
     if bad.size:
@@ -944,17 +959,18 @@ def max_stable_dt(method, eigenvalues, margin: float = 1.0) -> float:
     directions = ray_directions(values)
     coefficients = stability_coefficients(method)
     if coefficients is None:  # exp(z): stable exactly where Re(h lambda) <= 0
-        return 0.0 if np.any(directions.real > 0) else math.inf
+        growing = directions[directions.real > 0]
+        return (0.0, complex(growing[0])) if growing.size else (math.inf, None)
     if directions.size == 0 or (np.all(directions.real <= 0) and analyse(method).a_stable):
-        return math.inf
+        return math.inf, None
     # The most restrictive ray first (a numerical scan only orders the work): every later ray
     # then needs only the exact proof that it stays stable up to the limit found so far.
-    limit = math.inf
+    limit, binding = math.inf, None
     for lam in directions[np.argsort(_scanned_limits(coefficients, directions), kind="stable")]:
         h = ray_limit(coefficients, lam, None if math.isinf(limit) else limit)
-        if h is not None:
-            limit = min(limit, h)
-    return limit * margin
+        if h is not None and h < limit:
+            limit, binding = h, complex(lam)
+    return limit, binding
 
 
 # Geometric grid of h*|lambda| for the numerical scan that orders the rays (0.6 % steps).

@@ -47,12 +47,16 @@ def json_text(data) -> str:
 def check_data(outcome) -> dict:
     """`check --json` for a report.CheckOutcome: the report's fields, then what the options added.
 
-    Keys: method, model, dt, substeps, strict_compile, cross_checks, order; error_estimate,
+    Keys: method, model, dt, substeps, strict_compile, cross_checks (each with the tick and time
+    of its worst errors), order, scenario, parameters, stability, order_skipped; error_estimate,
     pictures and targets when asked for; with one target, its TARGET_SUMMARY_KEYS also at the top
     level; passed last (every check, options included).
     """
     data = outcome.report.to_dict()
     data.pop("passed")
+    for c in data["cross_checks"]:  # the ticks of the worst errors as times too (s)
+        c["worst_time"] = c["worst_tick"] * data["dt"]
+        c["accuracy_time"] = c["accuracy_tick"] * data["dt"]
     if outcome.estimates:
         data["error_estimate"] = [dict(e.__dict__) for e in outcome.estimates]
     if outcome.pictures:

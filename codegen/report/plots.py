@@ -159,28 +159,34 @@ def convergence_title(model_name: str, method_id: str, study) -> str:
 
 
 def check_pictures(model, method, dt: float, substeps: int, precisions, ticks: int, report,
-                   out_dir, fmt: str = "png", options: dict | None = None) -> list[Path]:
+                   out_dir, fmt: str = "png", options: dict | None = None, inputs=None,
+                   parameters=None) -> list[Path]:
     """The pictures of `tickwright check`: trajectories of the C builds and the convergence plot.
 
     options: the generation options of implicit methods the check used, so the pictures show the
-    same C as the check.
+    same C as the check; inputs, parameters: the check's inputs and tunable parameter values per
+    tick (None: the input sweep and the model's values).
     """
     from .. import reference
     from ..build import build
     from ..pipeline import generate
     from ..run import as_precision, run_c
     from ..verify import excitation
+    from ..verify.scenario import tunable_as_inputs
 
     out = Path(out_dir)
     written = []
-    u = excitation(model, ticks)
+    u = excitation(model, ticks) if inputs is None else np.asarray(inputs)
     runs = {}
     ts = None
     for precision in precisions:
         csource = generate(model, method, dt, substeps, precision, **(options or {}))
-        c_run = run_c(build(csource, model), model, as_precision(u, precision))
+        c_run = run_c(build(csource, model), model, as_precision(u, precision),
+                      parameters=parameters)
         runs[f"C ({precision})"] = c_run.xs[: c_run.completed + 1]
         ts = c_run.ts
+    if parameters is not None:  # the reference reads per-tick parameters as inputs
+        model, u = tunable_as_inputs(model), np.hstack([u, parameters])
     ref = reference.run(model, method, dt, substeps, u)
     runs["Python reference"] = ref.xs[: ref.completed + 1]
     exact = reference.high_accuracy(model, dt, u)

@@ -10,7 +10,12 @@ import math
 
 import numpy as np
 
+from ..emit import STATUS_CODES
 from ..run import Replay
+from ..verify import COLUMN, SWEEP
+
+# Status name -> what it means, as the generated header documents it.
+STATUS_MEANINGS = {name: meaning for name, _, meaning in STATUS_CODES}
 
 # Width of the label column of the check lines ('cross-check double', 'target cortex-m4f float').
 LABEL_WIDTH = 24
@@ -42,29 +47,71 @@ def row(label: str, passed: bool | None, text: str) -> str:
 
 # ---- check ----------------------------------------------------------------------------------------
 
-def cross_check_lines(c) -> list[str]:
-    """The cross-check and accuracy lines of one verify.CrossCheck."""
-    same = c.max_difference <= c.tolerance and c.completed == c.ticks
-    lines = [
-        row(f"cross-check {c.precision}", same,
-            f"max |C - reference| = {c.max_difference:.3g} in {c.worst_state} (bound "
-            f"{c.tolerance:.3g}) over {c.ticks} ticks"),
-        row(f"accuracy {c.precision}", c.accurate,
-            f"max |C - solve_ivp| = {100 * c.error_vs_high_accuracy:.3g} % of the state's scale "
-            f"(target {100 * c.accuracy_tolerance:g} %)")]
+def _at(tick: int, dt: float) -> str:
+    """Where a figure was found: 'tick 37, t = 0.0037 s' (tick 0 is the start)."""
+    return f"tick {tick}, t = {tick * dt:g} s"
+
+
+def cross_check_lines(c, dt: float) -> list[str]:
+    """The cross-check and accuracy lines of one verify.CrossCheck, and why a run stopped.
+
+    Each verdict is for the figure on its line, over the ticks compared; a run that stopped
+    early gets its own FAIL line, with the status by its name (emit.STATUS_CODES).
+    """
+    if c.compared == 0:
+        lines = [row(f"cross-check {c.precision}", None, "nothing to compare: no tick completed")]
+    else:
+        lines = [row(f"cross-check {c.precision}", c.max_difference <= c.tolerance,
+                     f"max |C - reference| = {c.max_difference:.3g} (bound {c.tolerance:.3g}) "
+                     f"in {c.worst_state} at {_at(c.worst_tick, dt)}; {c.compared} ticks")]
+    if c.accuracy_compared == 0:
+        lines.append(row(f"accuracy {c.precision}", None, "not measured: no tick completed"))
+    else:
+        lines.append(row(f"accuracy {c.precision}", c.accurate,
+                         f"max |C - solve_ivp| = {100 * c.error_vs_high_accuracy:.3g} % of the "
+                         f"state's scale (target {100 * c.accuracy_tolerance:g} %) in "
+                         f"{c.accuracy_state} at {_at(c.accuracy_tick, dt)}"))
     if c.completed < c.ticks:
-        lines.append(row("", None, f"stopped after {c.completed} ticks: a state became "
-                                   "non-finite (the step is unstable or the inputs are out of "
-                                   "range)"))
+        k = c.completed + 1
+        lines.append(row(f"run {c.precision}", False,
+                         f"the C stopped at {_at(k, dt)}: status {c.status}: "
+                         f"{STATUS_MEANINGS.get(c.status, 'unknown status')}"))
+    elif c.compared < c.ticks:
+        k = c.compared + 1
+        lines.append(row(f"run {c.precision}", False, f"the reference stopped at {_at(k, dt)}: "
+                                                      "a state became non-finite"))
+    elif c.accuracy_compared < c.ticks:
+        k = c.accuracy_compared + 1
+        lines.append(row(f"run {c.precision}", False, f"solve_ivp stopped at {_at(k, dt)}: no "
+                                                      "accurate solution beyond it (the model "
+                                                      "may blow up there)"))
     return lines
 
 
 def order_line(o) -> str:
-    """The line of one verify.OrderStudy."""
+    """The line of one verify.OrderStudy (a study that could not measure has no verdict)."""
+    if not o.measurable:
+        return row("order", None, o.note)
     if o.measured is None:
         return row("order", o.passed, o.note)
     return row("order", o.passed, f"measured {o.measured:.2f} (expected {o.expected}) from "
                                   f"{o.steps[0]}..{o.steps[-1]} steps over {o.horizon:.3g} s")
+
+
+def inputs_line(r) -> str:
+    """What the runs of a CheckReport took: the sweep or a log, and any parameters set."""
+    source = "each input sweeps its range" if r.scenario == SWEEP else r.scenario
+    ticks = r.cross_checks[0].ticks if r.cross_checks else 0
+    text = f"{source}, {ticks} ticks"
+    if r.parameters:
+        text += "; " + ", ".join(f"{name} per tick (column)" if value == COLUMN else
+                                 f"{name} = {value:g} (--set)" for name, value in r.parameters)
+    return row("inputs", None, text)
+
+
+def stability_line(g) -> str:
+    """The line of one advice.gate.StabilityGate (no verdict when it could not decide)."""
+    return row("stability", g.passed if g.decided else None, g.summary)
 
 
 def estimate_line(e) -> str:
@@ -98,10 +145,15 @@ def check_lines(outcome) -> list[str]:
     lines = [f"{r.model}: {outcome.method_name} ({r.method}{note}), dt = {r.dt:g} s, {r.substeps} "
              "substep(s)"]
     body = [row("strict compile", True, r.strict_compile)]
+    if r.stability is not None:
+        body.append(stability_line(r.stability))
+    body.append(inputs_line(r))
     for c in r.cross_checks:
-        body += cross_check_lines(c)
+        body += cross_check_lines(c, r.dt)
     if r.order is not None:
         body.append(order_line(r.order))
+    elif r.order_skipped:
+        body.append(row("order", None, r.order_skipped))
     body += [estimate_line(e) for e in outcome.estimates]
     body += [f"picture: {p}" for p in outcome.pictures]
     for t in outcome.targets:

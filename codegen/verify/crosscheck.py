@@ -16,8 +16,8 @@ from ..methods import NEWTON_KINDS, Method
 from ..model import Model
 from ..pipeline import generate
 from ..rounding import rounding_per_step
-from ..run import as_precision, run_c
-from .scenario import DEFAULT_ACCURACY, excitation, state_scales
+from ..run import as_precision, run_built, status_name, trajectory
+from .scenario import DEFAULT_ACCURACY, excitation, state_scales, tunable_as_inputs
 
 
 @dataclass(frozen=True)
@@ -34,6 +34,17 @@ class CrossCheck:
     accuracy_tolerance: float
     accurate: bool
     passed: bool
+    # Where the run stopped and where the worst errors are (ticks count from 0, the start).
+    # status: the C's status on the tick that stopped it ('OK' when it took every tick);
+    # compared: ticks that both the C and the reference took; worst_tick: the tick of
+    # max_difference; accuracy_state, accuracy_tick: where error_vs_high_accuracy is, over the
+    # accuracy_compared ticks that both the C and solve_ivp took.
+    status: str
+    compared: int
+    accuracy_compared: int
+    worst_tick: int
+    accuracy_state: str
+    accuracy_tick: int
 
 
 
@@ -83,27 +94,39 @@ def newton_allowance(model: Model, method, precision: str, steps: int, xs: np.nd
 def cross_check(model: Model, method: Method, dt: float, substeps: int, precision: str,
                 ticks: int, inputs: np.ndarray | None = None,
                 accuracy: float = DEFAULT_ACCURACY, options: dict | None = None,
-                csource=None) -> CrossCheck:
+                csource=None, parameters: np.ndarray | None = None) -> CrossCheck:
     """Build the C and compare it tick by tick with the independent reference.
 
     options: generation options of implicit methods (newton_iterations, newton_tol, solver);
-    csource: the already generated C for these arguments, if the caller has it.
+    csource: the already generated C for these arguments, if the caller has it; parameters:
+    (ticks, len(model.tunable)) values of the tunable parameters per tick, or None.
     """
     if csource is None:
         csource = generate(model, method, dt, substeps, precision, **(options or {}))
     built = build(csource, model)
     u = excitation(model, ticks) if inputs is None else inputs
     u = as_precision(u, precision)
-    c_run = run_c(built, model, u)
+    c_replay = run_built(built, model, u, parameters=None if parameters is None
+                         else as_precision(parameters, precision))
+    c_run = trajectory(c_replay, model)
     params = {p.name: float(as_precision(p.value, precision)) for p in model.parameters}
     x0 = as_precision([s.initial for s in model.states], precision)
-    ref = reference.run(model, method, dt, substeps, u, x0=x0, parameters=params)
-    exact = reference.high_accuracy(model, dt, u, x0=x0, parameters=params)
+    # The reference takes per-tick parameters as extra inputs; both stop with the C (the tick
+    # the C failed on is still run by the reference, to see whether it fails there too).
+    ref_model, ref_u = model, u
+    if parameters is not None:
+        ref_model = tunable_as_inputs(model)
+        ref_u = np.hstack([u, as_precision(parameters, precision)])
+        params = {p.name: params[p.name] for p in ref_model.parameters}
+    ref = reference.run(ref_model, method, dt, substeps, ref_u[: c_run.completed + 1], x0=x0,
+                        parameters=params)
+    exact = reference.high_accuracy(ref_model, dt, ref_u[: c_run.completed], x0=x0,
+                                    parameters=params)
     n = min(c_run.completed, ref.completed)
     # Per state: the largest difference against that state's own bound (rounding of numbers of
     # the state's full scale, plus the Newton allowance); the worst state is reported.
     diff = np.nanmax(np.abs(c_run.xs[: n + 1] - ref.xs[: n + 1]), axis=0)
-    growth = growth_factor(model, ticks * dt, u)
+    growth = growth_factor(ref_model, ticks * dt, ref_u)
     scales = state_scales(model, ref.xs[: n + 1])
     tols = rounding_tolerance(model, method, precision, ticks, substeps, scales, growth)
     tols = tols + newton_allowance(model, method, precision, ticks * substeps, ref.xs[: n + 1],
@@ -116,9 +139,19 @@ def cross_check(model: Model, method: Method, dt: float, substeps: int, precisio
     rel = np.abs(c_run.xs[: m + 1] - exact.xs[: m + 1]) / scales
     acc = float(np.max(rel)) if rel.size else float("nan")
     finished = c_run.completed == ticks == ref.completed
-    accurate = bool(finished and np.isfinite(acc) and acc <= accuracy)
-    passed = bool(finished and np.all(np.isfinite(diff)) and np.all(diff <= tols) and accurate)
+    # Each verdict is for the figure it states: the ticks compared; a run that stopped early
+    # fails the check by itself (passed), not through these figures.
+    accurate = bool(m > 0 and np.isfinite(acc) and acc <= accuracy)
+    passed = bool(finished and exact.completed == ticks and np.all(np.isfinite(diff))
+                  and np.all(diff <= tols) and accurate)
+    worst_tick = int(np.nanargmax(np.abs(c_run.xs[: n + 1, worst] - ref.xs[: n + 1, worst]))) \
+        if np.any(np.isfinite(c_run.xs[: n + 1, worst] - ref.xs[: n + 1, worst])) else 0
+    acc_tick, acc_state = np.unravel_index(int(np.argmax(rel)), rel.shape) if rel.size else (0, 0)
     return CrossCheck(precision=precision, ticks=ticks, completed=c_run.completed,
                       max_difference=max_diff, tolerance=tol,
                       worst_state=model.states[worst].name, error_vs_high_accuracy=acc,
-                      accuracy_tolerance=accuracy, accurate=accurate, passed=passed)
+                      accuracy_tolerance=accuracy, accurate=accurate, passed=passed,
+                      status=status_name(c_replay.status), compared=n, accuracy_compared=m,
+                      worst_tick=worst_tick,
+                      accuracy_state=model.states[int(acc_state)].name,
+                      accuracy_tick=int(acc_tick))

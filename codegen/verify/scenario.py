@@ -4,7 +4,25 @@ from __future__ import annotations
 
 import numpy as np
 
-from ..model import Model
+from ..model import Input, Model
+
+
+def tunable_as_inputs(model: Model) -> Model:
+    """The model with every tunable parameter moved to the end of its inputs.
+
+    The reference then takes a tunable parameter's value per tick from the same row as the
+    inputs, the way the C reads its context field before each tick (run.run_built). The symbols
+    keep their names, so every expression of the model stays as it is.
+    """
+    if not model.tunable:
+        return model
+    moved = tuple(Input(name=p.name, unit=p.unit, range=p.range, description=p.description,
+                        default=p.value) for p in model.tunable)
+    return Model(name=model.name, states=model.states, inputs=model.inputs + moved,
+                 parameters=tuple(p for p in model.parameters if not p.tunable),
+                 outputs=model.outputs, time=model.time, description=model.description,
+                 source=model.source, digest=model.digest)
+
 
 def excitation(model: Model, ticks: int) -> np.ndarray:
     """A deterministic excitation: each ranged input sweeps its range; others keep their default.
