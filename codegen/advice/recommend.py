@@ -63,7 +63,7 @@ from .. import reference
 from ..discretize import linear_parts as exact_linear_parts
 from ..errors import CheckError, ModelError, TickwrightError
 from ..methods import EXACT, NEWTON_KINDS, analysis
-from ..model import Model
+from ..model import Model, non_smooth
 from ..reference.steppers import SIMPLIFIED_NEWTON
 from ..rounding import rounding_per_step
 from ..verify.scenario import excitation, state_scales
@@ -104,8 +104,6 @@ NICE_MANTISSAS = (1.0, 1.25, 1.5, 2.0, 2.5, 3.0, 4.0, 5.0, 6.0, 8.0)
 # A mode counts as excited (for the report) when its error, at most twice its amplitude
 # (|R^n| and |exp(n z)| are both <= 1), can reach this fraction of the truncation target.
 EXCITED_SHARE = 0.1
-# Functions whose derivative jumps: a model using them is non-smooth (order 1 at a switch).
-NON_SMOOTH = (sp.Piecewise, sp.Abs, sp.Min, sp.Max, sp.sign, sp.floor, sp.ceiling)
 
 
 def nice_floor(dt: float) -> float:
@@ -125,11 +123,6 @@ def nice_floor(dt: float) -> float:
 def finer(dt: float) -> float:
     """The next tick of the ladder below dt."""
     return nice_floor(dt * (1 - 1e-9))
-
-
-def non_smooth(model: Model) -> bool:
-    """Whether a rate uses Piecewise, abs, min, max, sign, floor or ceil."""
-    return any(sp.sympify(rate).has(*NON_SMOOTH) for rate in model.f)
 
 
 # ---------------------------------------------------------------------------------------------

@@ -11,10 +11,10 @@
 
 from .expressions import parse_expression
 from .loader import load_model, model_from_data
-from .types import (C_KEYWORDS, INTERNAL_PREFIX, RESERVED_NAMES, Input, Model, Output, Parameter,
-                    Quantity, State, define)
+from .types import (C_KEYWORDS, INTERNAL_PREFIX, NON_SMOOTH_FUNCTIONS, RESERVED_NAMES, Input, Model,
+                    Output, Parameter, Quantity, State, define, non_smooth)
 from .units import check_units
 
-__all__ = ["C_KEYWORDS", "INTERNAL_PREFIX", "RESERVED_NAMES", "Input", "Model", "Output",
-           "Parameter", "Quantity", "State", "check_units", "define", "load_model",
-           "model_from_data", "parse_expression"]
+__all__ = ["C_KEYWORDS", "INTERNAL_PREFIX", "NON_SMOOTH_FUNCTIONS", "RESERVED_NAMES", "Input",
+           "Model", "Output", "Parameter", "Quantity", "State", "check_units", "define",
+           "load_model", "model_from_data", "non_smooth", "parse_expression"]

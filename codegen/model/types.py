@@ -299,3 +299,20 @@ def define(name: str, states, inputs=(), parameters=(), outputs=(), time: str = 
     return Model(name=name, states=tuple(states), inputs=tuple(inputs),
                  parameters=tuple(parameters), outputs=tuple(outputs), time=time,
                  description=description, source=source)
+
+
+# Functions whose derivative jumps somewhere: a trajectory through the jump loses a method's order
+# (the error expansions behind order studies and step-size estimates assume a smooth right-hand
+# side). Common practice, no source.
+NON_SMOOTH_FUNCTIONS = (sp.Piecewise, sp.Abs, sp.Min, sp.Max, sp.sign, sp.floor, sp.ceiling,
+                        sp.Heaviside)
+
+
+def non_smooth(model: Model) -> tuple[str, ...]:
+    """Where the rates use a non-smooth function, as 'Piecewise in states.v.rate' (state order)."""
+    found = []
+    for s in model.states:
+        names = sorted({type(node).__name__ for node in sp.preorder_traversal(s.rate)
+                        if isinstance(node, NON_SMOOTH_FUNCTIONS)})
+        found += [f"{name} in states.{s.name}.rate" for name in names]
+    return tuple(found)

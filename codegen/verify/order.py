@@ -9,12 +9,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import sympy as sp
 
 from .. import reference
 from ..build import build
 from ..methods import EXACT, Method
-from ..model import Model
+from ..model import Model, non_smooth
 from ..pipeline import generate
 from ..run import run_c
 from .scenario import constant_inputs
@@ -29,6 +28,15 @@ ORDER_ERROR_FLOOR = {"double": 1e-13}
 # level 30 times above it is off by at most ~3 % (0.05 in the fitted order).
 ORDER_NOISE_MARGIN = 30.0
 ORDER_MAX_LEVELS = 14
+# The coarsest level (two steps) must err by at least this fraction of the scale, or the model
+# barely moves over the horizon (a stiff model whose fast mode is not excited) and the levels hit
+# the floor before three of them fit: three levels of an order-5 method span 2^10, and the last
+# must stand ORDER_NOISE_MARGIN above the 1e-13 floor, so the first needs about 3e-9. Such a
+# study starts instead from the centre of the declared state ranges, where every mode moves, and
+# failing that lengthens the horizon by ORDER_HORIZON_STRETCH at most ORDER_MAX_STRETCHES times.
+ORDER_MIN_COARSE_ERROR = 1e-8
+ORDER_HORIZON_STRETCH = 8.0
+ORDER_MAX_STRETCHES = 6
 
 
 @dataclass(frozen=True)
@@ -49,9 +57,9 @@ class OrderStudy:
 
 
 
-def order_horizon(model: Model, u: np.ndarray) -> float:
-    """A horizon of two of the model's fastest time constants at the initial point."""
-    x0 = np.array([s.initial for s in model.states])
+def order_horizon(model: Model, u: np.ndarray, x0=None) -> float:
+    """A horizon of two of the model's fastest time constants at x0 (default: the initial point)."""
+    x0 = np.array([s.initial for s in model.states] if x0 is None else x0, dtype=float)
     jac = reference.jacobian_function(model)
     with np.errstate(all="ignore"):
         eig = np.linalg.eigvals(jac(0.0, x0, u))
@@ -79,27 +87,36 @@ def _window(errors: list[float], scale: float, floor: float) -> list[int]:
     return keep
 
 
+# Three levels are taken as asymptotic when the two local orders between them (log2 of the error
+# ratios) agree to within this: before the asymptotic regime the local order still drifts.
+ORDER_AGREEMENT = 0.1
+
+
+def _local_orders_agree(errors: list[float], i: int) -> bool:
+    """Whether levels i, i+1, i+2 give two local orders that agree to ORDER_AGREEMENT."""
+    local = lambda k: np.log2(errors[k] / errors[k + 1])
+    return abs(local(i) - local(i + 1)) <= ORDER_AGREEMENT
+
+
+def _asymptotic(window: list[int], errors: list[float]) -> list[int]:
+    """The three consecutive levels of the window deepest in the asymptotic regime.
+
+    The deepest run of three whose two local orders agree to ORDER_AGREEMENT; when no run
+    agrees (too few levels reach it), the last three, as before.
+    """
+    runs = [window[k:k + 3] for k in range(len(window) - 2)
+            if window[k + 2] - window[k] == 2]
+    settled = [r for r in runs if _local_orders_agree(errors, r[0])]
+    return (settled or [window[-3:]])[-1]
+
+
 def fitted_order(steps, errors) -> float:
     """Least-squares slope of log(error) against log(1/n)."""
     return float(-np.polyfit(np.log(np.asarray(steps, float)), np.log(np.asarray(errors)), 1)[0])
 
 
-# Functions whose derivative jumps somewhere: a trajectory through the jump loses the method's
-# order (the error expansion behind every order study assumes a smooth right-hand side).
-NON_SMOOTH_FUNCTIONS = (sp.Piecewise, sp.Abs, sp.Min, sp.Max, sp.sign, sp.floor, sp.ceiling,
-                        sp.Heaviside)
 # What the order line says when the study could not measure a non-smooth model.
 NOT_MEASURABLE = "order not measurable (non-smooth model)"
-
-
-def non_smooth(model: Model) -> tuple[str, ...]:
-    """Where the rates use a non-smooth function, as 'Piecewise in states.v.rate' (state order)."""
-    found = []
-    for s in model.states:
-        names = sorted({type(node).__name__ for node in sp.preorder_traversal(s.rate)
-                        if isinstance(node, NON_SMOOTH_FUNCTIONS)})
-        found += [f"{name} in states.{s.name}.rate" for name in names]
-    return tuple(found)
 
 
 def _not_measurable(study: OrderStudy, where: tuple[str, ...]) -> OrderStudy:
@@ -121,27 +138,54 @@ def _end_error(run: reference.Trajectory, n: int, exact: np.ndarray) -> float:
     return float(np.max(np.abs(run.xs[-1] - exact))) if run.completed == n else float("inf")
 
 
-def _c_end_errors(model, method, u, horizon, exact, steps, options, progress, what) -> list:
-    """End errors of the C build (double) with n steps over the horizon, for each n in steps."""
+def _c_end_errors(model, method, u, x0, horizon, exact, steps, options, progress,
+                  what) -> list:
+    """End errors of the C build (double) with n steps over the horizon from x0, for each n."""
     errors = []
     for n in steps:
         if progress:
             progress(f"{what}: C build with {n} steps over {horizon:.3g} s")
         built = build(generate(model, method, horizon / n, 1, "double", **(options or {})), model)
-        errors.append(_end_error(run_c(built, model, np.repeat(u[None, :], n, axis=0)), n, exact))
+        errors.append(_end_error(run_c(built, model, np.repeat(u[None, :], n, axis=0), x0=x0), n,
+                                 exact))
     return errors
 
 
-def _exact_study(model, method, u, horizon, exact, scale, options, progress) -> OrderStudy:
+def _exact_study(model, method, u, x0, horizon, exact, scale, options, progress) -> OrderStudy:
     """For an exact discretization: the error must stay at rounding level at every step size."""
     steps = (2, 4, 8)
-    c_errors = _c_end_errors(model, method, u, horizon, exact, steps, options, progress,
+    c_errors = _c_end_errors(model, method, u, x0, horizon, exact, steps, options, progress,
                              "exactness")
     passed = all(e <= EXACT_AGREEMENT * scale for e in c_errors)
     return OrderStudy(None, horizon, steps, tuple(c_errors), (), None, bool(passed),
                       "exact discretization: error at the reference's tolerance at every step "
                       "size" if passed else "exact discretization: error above the reference's "
                       "tolerance")
+
+
+def _setting(model: Model, method: Method, u: np.ndarray):
+    """(x0, horizon, exact end state, scale) of the study: where the model moves enough.
+
+    The initial point first; when two steps over its horizon err by less than
+    ORDER_MIN_COARSE_ERROR of the scale, the centre of the declared state ranges; then, still
+    too little motion, the horizon lengthened (see ORDER_MIN_COARSE_ERROR).
+    """
+    starts = [np.array([s.initial for s in model.states], dtype=float)]
+    if any(s.range for s in model.states):
+        starts.append(np.array([0.5 * (s.range[0] + s.range[1]) if s.range else s.initial
+                                for s in model.states], dtype=float))
+    for i, x0 in enumerate(starts):
+        horizon = order_horizon(model, u, x0)
+        stretches = ORDER_MAX_STRETCHES if i == len(starts) - 1 else 0
+        for _ in range(stretches + 1):
+            exact = reference.high_accuracy(model, horizon, u[None, :], x0=x0, rtol=1e-13).xs[-1]
+            scale = max(float(np.max(np.abs(exact))), 1e-300)
+            coarse = _end_error(reference.run(model, method, horizon / 2, 1,
+                                              np.repeat(u[None, :], 2, axis=0), x0=x0), 2, exact)
+            if not (np.isfinite(coarse) and coarse < ORDER_MIN_COARSE_ERROR * scale):
+                return x0, horizon, exact, scale
+            horizon *= ORDER_HORIZON_STRETCH
+    return x0, horizon / ORDER_HORIZON_STRETCH, exact, scale
 
 
 def measure_order(model: Model, method: Method, expected: int | None = None,
@@ -165,17 +209,15 @@ def _study(model: Model, method: Method, expected: int | None, progress,
            options: dict | None) -> OrderStudy:
     expected = expected or method.order
     u = constant_inputs(model)
-    horizon = order_horizon(model, u)
-    exact = reference.high_accuracy(model, horizon, u[None, :], rtol=1e-13).xs[-1]
-    scale = max(float(np.max(np.abs(exact))), 1e-300)
+    x0, horizon, exact, scale = _setting(model, method, u)
     if method.kind == EXACT:
-        return _exact_study(model, method, u, horizon, exact, scale, options, progress)
+        return _exact_study(model, method, u, x0, horizon, exact, scale, options, progress)
     floor = ORDER_ERROR_FLOOR["double"]
     steps, ref_errors = [], []
     for level in range(1, ORDER_MAX_LEVELS + 1):
         n = 2 ** level
         err = _end_error(reference.run(model, method, horizon / n, 1,
-                                       np.repeat(u[None, :], n, axis=0)), n, exact)
+                                       np.repeat(u[None, :], n, axis=0), x0=x0), n, exact)
         steps.append(n)
         ref_errors.append(err)
         if np.isfinite(err) and err < floor * scale:
@@ -189,9 +231,9 @@ def _study(model: Model, method: Method, expected: int | None, progress,
         return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, False,
                           "fewer than three step sizes in the asymptotic range; the model may be "
                           "non-smooth (Piecewise, abs, min/max) or badly scaled")
-    idx = idx[-3:]
+    idx = _asymptotic(idx, ref_errors)
     chosen = [steps[i] for i in idx]
-    c_errors = _c_end_errors(model, method, u, horizon, exact, chosen, options, progress,
+    c_errors = _c_end_errors(model, method, u, x0, horizon, exact, chosen, options, progress,
                              "order study")
     if not all(np.isfinite(c_errors)) or min(c_errors) <= 0:
         return OrderStudy(expected, horizon, tuple(chosen), tuple(c_errors),
