@@ -198,8 +198,8 @@ def advice_lines(advice) -> list[str]:
     if advice.precision:
         lines.append(f"precision: {advice.precision['note']}")
     if any(r.cost_note != "counted" for r in advice.methods):
-        lines.append("ops/step: counted on the generated step for explicit methods; other kinds "
-                     "are estimated (LU 2/3 n^3, solve 2 n^2, Newton iterations as measured)")
+        lines.append("ops/step: counted on the generated step; methods with a Newton loop for "
+                     "the iterations per solve measured on the model")
     return lines
 
 
