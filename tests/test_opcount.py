@@ -97,7 +97,8 @@ def test_constant_coefficients_are_multiplications_not_divisions():
 def test_the_demo_tick_performs_four_divisions(axis):
     # RK4 on the axis: 4 rate evaluations, each with one division by the tunable J and one tanh;
     # per evaluation 8 products (3 + 4 + 1) and 4 additions; stage sums 3 x 3 x (1 mul, 1 add),
-    # 3 stage times, update 3 x (4 mul, 4 add), the time update (1 mul, 1 add), the new time (1 add).
+    # 3 stage times, update 3 x (4 mul, 4 add), the time update (1 mul, 1 add), the new time
+    # (1 add).
     step = simplify(discretize(axis, builtin("rk4"), 2e-4))
     expected = OperationCount(add=4 * 4 + 9 + 3 + 12 + 2, mul=4 * 8 + 9 + 12 + 1, div=4, call=4)
     assert step_cost(step) == expected

@@ -15,6 +15,7 @@ from codegen.report.text import (check_lines, estimate_line, methods_table, repl
 from codegen.run import Replay
 from codegen.targets import TargetReport, load_target
 from codegen.verify import CheckReport, CrossCheck, OrderStudy
+from codegen.verify.audit import CoefficientAudit
 from codegen.verify.estimate import EstimateCheck
 
 from conftest import ROOT
@@ -22,11 +23,14 @@ from conftest import ROOT
 STRICT = "gcc -std=c99 -Wall ... -Werror -ffp-contract=off -O2 -c axis.c -o out.o"
 
 
-def cross(precision, difference, bound, error, passed=True, completed=200):
+def cross(precision, difference, bound, error, passed=True, completed=200, worst="i",
+          ratios=None, literals=28):
+    ratios = ratios or {worst: difference / bound}
     return CrossCheck(precision=precision, ticks=200, completed=completed,
-                      max_difference=difference, tolerance=bound, worst_state="i",
+                      max_difference=difference, tolerance=bound, worst_state=worst,
                       error_vs_high_accuracy=error, accuracy_tolerance=0.01, accurate=passed,
-                      passed=passed)
+                      passed=passed, ratio=ratios[worst], state_ratios=ratios,
+                      coefficients=CoefficientAudit(literals, (), True))
 
 
 def axis_report(passed=True, order=True) -> CheckReport:
@@ -34,8 +38,10 @@ def axis_report(passed=True, order=True) -> CheckReport:
     study = OrderStudy(4, 0.000673, (64, 128, 256), (1e-6, 6e-8, 4e-9), (1e-6, 6e-8, 4e-9), 4.01,
                        True) if order else None
     return CheckReport(method="rk4", model="axis", dt=1e-4, substeps=1, strict_compile=STRICT,
-                       cross_checks=(cross("float", 6.71e-07, 0.00238, 4.72e-06, passed),
-                                     cross("double", 8.88e-16, 4.44e-12, 4.7e-06)),
+                       cross_checks=(cross("float", 7.23e-12, 1.46e-11, 4.72e-06, passed,
+                                           worst="x", ratios=dict(i=0.25, w=0.48, x=0.4996)),
+                                     cross("double", 7.11e-15, 1.57e-14, 4.7e-06, worst="w",
+                                           ratios=dict(i=0.25, w=0.45, x=0.27))),
                        order=study, passed=passed)
 
 
@@ -54,7 +60,7 @@ def readme_check_block() -> list[str]:
 
 def test_check_lines_are_the_readme_s_example():
     lines = check_lines(CheckOutcome(axis_report(), "classical RK4"))
-    assert len(lines) == 8
+    assert len(lines) == 12
     assert lines == readme_check_block()
 
 
@@ -64,8 +70,11 @@ def test_a_run_that_stopped_says_so_under_its_cross_check():
     report = CheckReport(**{**report.__dict__, "cross_checks": (bad,)})
     lines = check_lines(CheckOutcome(report, "classical RK4"))
     assert lines[2:] == [
-        "  cross-check float        FAIL  max |C - reference| = 1.5 in i (bound 0.00238) over "
-        "200 ticks",
+        "  cross-check float        FAIL  max |C - reference| = 1.5 in i (bound 0.00238, ratio "
+        "6.3e+02) over 200 ticks",
+        "                                 observed/bound per state: i 6.3e+02",
+        "  coefficients float       ok    every literal of the C (28) equals the correctly rounded "
+        "exact value of the IR",
         "  accuracy float           FAIL  max |C - solve_ivp| = 50 % of the state's scale "
         "(target 1 %)",
         "                                 stopped after 120 ticks: a state became non-finite (the "

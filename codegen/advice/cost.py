@@ -30,11 +30,11 @@ import math
 from dataclasses import asdict, dataclass
 
 import sympy as sp
-from sympy.core.mul import _keep_coeff
 
 from ..discretize import (DENSE_LU, ELIMINATION, INVERSE, Block, CoupledStage, DiagonalStage,
                           G, ImplicitStep, LinearSolve, RosenbrockStage, StepProgram)
-from ..emit.printer import MAX_EXPANDED_POWER, StepPrinter
+from ..emit.printer import MAX_EXPANDED_POWER
+from ..emit.structure import printed_product, printed_terms
 from ..errors import TickwrightError
 from ..methods import DIAGONALLY_IMPLICIT, EXACT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
 from ..model import Model
@@ -88,10 +88,7 @@ def _sum(counts) -> OperationCount:
 
 
 class _ExprCounter:
-    """Counts one expression the way StepPrinter prints it (its term and factor order)."""
-
-    def __init__(self):
-        self.printer = StepPrinter("float")
+    """Counts one expression the way StepPrinter prints it (emit/structure.py)."""
 
     def count(self, e) -> OperationCount:
         if e.is_Atom or isinstance(e, (sp.logic.boolalg.BooleanAtom,)):
@@ -123,29 +120,16 @@ class _ExprCounter:
         raise TickwrightError(f"internal: no operation count for {type(e).__name__}; this is a bug")
 
     def _add(self, e) -> OperationCount:
-        terms = self.printer._as_ordered_terms(e, order=None)
+        terms = printed_terms(e)
         total = OperationCount(add=len(terms) - 1)
-        for i, term in enumerate(terms):
-            negative = term.could_extract_minus_sign()
-            body = -term if negative else term
+        for i, (negative, body) in enumerate(terms):
             if i == 0 and negative and not body.is_Number:
                 total = total + ADD  # a leading '-' on a term that is not a literal
             total = total + self.count(body)
         return total
 
     def _mul(self, e) -> OperationCount:
-        c, rest = e.as_coeff_Mul()
-        sign = c < 0
-        if sign:
-            e = _keep_coeff(-c, rest)
-        numerator, denominator = [], []
-        for item in e.as_ordered_factors():
-            if item.is_commutative and item.is_Pow and item.exp.is_Rational and item.exp.is_negative:
-                denominator.append(sp.Pow(item.base, -item.exp, evaluate=False)
-                                   if item.exp != -1 else item.base)
-            else:
-                numerator.append(item)
-        numerator = numerator or [sp.S.One]
+        sign, numerator, denominator = printed_product(e)
         total = OperationCount(mul=len(numerator) - 1)
         if denominator:
             total = total + OperationCount(mul=len(denominator) - 1, div=1)
@@ -206,7 +190,7 @@ def _entry(entry) -> OperationCount:
 
 
 def factor_cost(solve: LinearSolve) -> OperationCount:
-    """Assembly and factorization of the iteration matrix (nothing for a generation-time inverse)."""
+    """Assembly and factorization of the iteration matrix (none for a generation-time inverse)."""
     if solve.kind == INVERSE:
         return NONE
     assembly = _sum(_entry(e) for e in solve.entries)

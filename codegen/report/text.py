@@ -33,15 +33,26 @@ def row(label: str, passed: bool | None, text: str) -> str:
 # ---- check ----------------------------------------------------------------------------------------
 
 def cross_check_lines(c) -> list[str]:
-    """The cross-check and accuracy lines of one verify.CrossCheck."""
+    """The cross-check, coefficient audit and accuracy lines of one verify.CrossCheck."""
     same = c.max_difference <= c.tolerance and c.completed == c.ticks
     lines = [
         row(f"cross-check {c.precision}", same,
             f"max |C - reference| = {c.max_difference:.3g} in {c.worst_state} (bound "
-            f"{c.tolerance:.3g}) over {c.ticks} ticks"),
+            f"{c.tolerance:.3g}, ratio {c.ratio:.2g}) over {c.ticks} ticks")]
+    if c.state_ratios:
+        lines.append(row("", None, "observed/bound per state: " + ", ".join(
+            f"{name} {ratio:.2g}" for name, ratio in c.state_ratios.items())))
+    if c.coefficients is not None:
+        a = c.coefficients
+        lines.append(row(f"coefficients {c.precision}", a.passed,
+                         f"every literal of the C ({a.literals}) equals the correctly rounded "
+                         "exact value of the IR" if a.passed else
+                         f"{len(a.problems)} of {a.literals} literals differ from the IR"))
+        lines += [row("", None, problem) for problem in a.problems]
+    lines.append(
         row(f"accuracy {c.precision}", c.accurate,
             f"max |C - solve_ivp| = {100 * c.error_vs_high_accuracy:.3g} % of the state's scale "
-            f"(target {100 * c.accuracy_tolerance:g} %)")]
+            f"(target {100 * c.accuracy_tolerance:g} %)"))
     if c.completed < c.ticks:
         lines.append(row("", None, f"stopped after {c.completed} ticks: a state became "
                                    "non-finite (the step is unstable or the inputs are out of "

@@ -395,7 +395,8 @@ class _Counter:
             if op == "&":
                 return _Value(real=False)
             if op == "!":
-                return _Value(real=False, value=None if inner.value is None else int(not inner.value))
+                negated = None if inner.value is None else int(not inner.value)
+                return _Value(real=False, value=negated)
             if inner.real:
                 if op == "-" and not inner.const:
                     tally[0] = tally[0] + OperationCount(add=1)
@@ -519,7 +520,7 @@ class _Counter:
 
 
 def _assigned_in_branches(node, inside: bool, out: set[str]) -> None:
-    """Names assigned by a statement inside an if branch (at any depth): their values are unknown."""
+    """Names assigned by a statement inside an if branch (at any depth): their value is unknown."""
     kind = node[0]
     if kind == "block":
         for s in node[1]:
