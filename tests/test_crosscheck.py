@@ -257,3 +257,40 @@ def test_the_whole_check_fails_on_a_planted_error(axis, monkeypatch):
     monkeypatch.setattr(verify, "generate", with_plant)
     report = check(axis, builtin("rk4"), 2e-4, precisions=("float",), ticks=50, order=False)
     assert not report.passed and not report.cross_checks[0].coefficients.passed
+
+
+def readme_block(after: str) -> list[str]:
+    """The first indented block of the README after the line that contains `after`."""
+    text = (EXAMPLES.parent / "README.md").read_text(encoding="utf-8")
+    section = text.split(after, 1)[1]
+    lines = []
+    for line in section.splitlines()[1:]:
+        if line.startswith("    "):
+            lines.append(line[4:])
+        elif lines:
+            break
+    return lines
+
+
+def test_the_readme_shows_what_the_demo_prints():
+    import re
+
+    runner = CliRunner()
+    with runner.isolated_filesystem():
+        result = runner.invoke(main, ["demo"])
+    assert result.exit_code == 0, result.output
+    printed = [line for line in result.stdout.splitlines() if not line.startswith("... ")]
+    shown = readme_block("The demo\nprints:")
+    assert len(printed) == len(shown)
+    # The counts are exact; the measured figures may move in their last digits with the C
+    # library, so they are compared as text with every number masked. The README abbreviates
+    # the compiler's warning flags.
+    number = re.compile(r"\d+(?:\.\d+)?(?:e[-+]\d+)?")
+    for got, want in zip(printed, shown):
+        if "strict compile" in want:
+            head, tail = want.split(" ... ")
+            assert got.startswith(head) and got.endswith(tail)
+        elif want.startswith(("cost per tick", "files written", "  tickwright-demo", "method")):
+            assert got == want
+        else:
+            assert number.sub("#", got) == number.sub("#", want)
