@@ -31,8 +31,7 @@ from dataclasses import asdict, dataclass
 
 import sympy as sp
 
-from ..discretize import (DENSE_LU, ELIMINATION, INVERSE, Block, CoupledStage, DiagonalStage,
-                          G, ImplicitStep, LinearSolve, RosenbrockStage, StepProgram)
+from ..discretize import DENSE_LU, INVERSE, Block, ImplicitStep, LinearSolve, StepProgram
 from ..emit.printer import MAX_EXPANDED_POWER
 from ..emit.structure import printed_product, printed_terms
 from ..errors import TickwrightError

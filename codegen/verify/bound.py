@@ -51,8 +51,7 @@ from dataclasses import dataclass
 import numpy as np
 import sympy as sp
 
-from ..discretize import (DENSE_LU, ELIMINATION, INVERSE, G, ImplicitStep, LinearSolve,
-                          StepProgram)
+from ..discretize import ELIMINATION, INVERSE, G, ImplicitStep, LinearSolve, StepProgram
 from ..emit.printer import MAX_EXPANDED_POWER
 from ..emit.structure import printed_product, printed_terms
 from ..errors import CheckError
