@@ -73,8 +73,8 @@ class OperationCount:
         return dict(asdict(self), total=self.total)
 
 
+# One operation of a kind, and none: the units the counts below are sums of.
 ADD = OperationCount(add=1)
-MUL = OperationCount(mul=1)
 DIV = OperationCount(div=1)
 NONE = OperationCount()
 
