@@ -16,6 +16,7 @@ from codegen.run import Replay
 from codegen.targets import TargetReport, load_target
 from codegen.advice.gate import StabilityGate
 from codegen.verify import CheckReport, CrossCheck, OrderStudy
+from codegen.verify.audit import CoefficientAudit
 from codegen.verify.estimate import EstimateCheck
 
 from conftest import ROOT
@@ -24,13 +25,15 @@ STRICT = "gcc -std=c99 -Wall ... -Werror -ffp-contract=off -O2 -c axis.c -o out.
 
 
 def cross(precision, difference, bound, error, passed=True, completed=200, status="OK",
-          worst=(154, 108)):
+          worst=(154, 108), state="i", ratios=None, literals=28):
+    ratios = ratios or {state: difference / bound}
     return CrossCheck(precision=precision, ticks=200, completed=completed,
-                      max_difference=difference, tolerance=bound, worst_state="i",
+                      max_difference=difference, tolerance=bound, worst_state=state,
                       error_vs_high_accuracy=error, accuracy_tolerance=0.01, accurate=passed,
                       passed=passed, status=status, compared=completed,
                       accuracy_compared=completed, worst_tick=worst[0], accuracy_state="i",
-                      accuracy_tick=worst[1])
+                      accuracy_tick=worst[1], ratio=ratios[state], state_ratios=ratios,
+                      coefficients=CoefficientAudit(literals, (), True))
 
 
 # The axis' gate at rk4 and 0.1 ms: its fastest eigenvalue sets the limit.
@@ -44,9 +47,12 @@ def axis_report(passed=True, order=True) -> CheckReport:
     study = OrderStudy(4, 0.000673, (64, 128, 256), (1e-6, 6e-8, 4e-9), (1e-6, 6e-8, 4e-9), 4.01,
                        True) if order else None
     return CheckReport(method="rk4", model="axis", dt=1e-4, substeps=1, strict_compile=STRICT,
-                       cross_checks=(cross("float", 6.71e-07, 0.00238, 4.72e-06, passed),
-                                     cross("double", 8.88e-16, 4.44e-12, 4.7e-06,
-                                           worst=(52, 107))),
+                       cross_checks=(cross("float", 7.23e-12, 1.46e-11, 4.72e-06, passed,
+                                           worst=(167, 108), state="x",
+                                           ratios=dict(i=0.25, w=0.48, x=0.4996)),
+                                     cross("double", 7.11e-15, 1.57e-14, 4.7e-06,
+                                           worst=(76, 107), state="w",
+                                           ratios=dict(i=0.25, w=0.45, x=0.27))),
                        order=study, passed=passed, stability=AXIS_GATE)
 
 
@@ -65,7 +71,7 @@ def readme_check_block() -> list[str]:
 
 def test_check_lines_are_the_readme_s_example():
     lines = check_lines(CheckOutcome(axis_report(), "classical RK4"))
-    assert len(lines) == 10
+    assert len(lines) == 14
     assert lines == readme_check_block()
 
 
@@ -83,8 +89,11 @@ def test_a_run_that_stopped_names_its_status_on_its_own_fail_line(status, meanin
                             "order_skipped": "not run: the float run stopped at tick 121"})
     lines = check_lines(CheckOutcome(report, "classical RK4"))
     assert lines[4:] == [
-        "  cross-check float        ok    max |C - reference| = 1e-06 (bound 0.00238) in i at "
-        "tick 37, t = 0.0037 s; 120 ticks",
+        "  cross-check float        ok    max |C - reference| = 1e-06 (bound 0.00238, ratio "
+        "0.00042) in i at tick 37, t = 0.0037 s; 120 ticks",
+        "                                 observed/bound per state: i 0.00042",
+        "  coefficients float       ok    every literal of the C (28) equals the correctly rounded "
+        "exact value of the IR",
         "  accuracy float           ok    max |C - solve_ivp| = 0.1 % of the state's scale "
         "(target 1 %) in i at tick 120, t = 0.012 s",
         f"  run float                FAIL  the C stopped at tick 121, t = 0.0121 s: status "

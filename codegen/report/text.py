@@ -53,7 +53,8 @@ def _at(tick: int, dt: float) -> str:
 
 
 def cross_check_lines(c, dt: float) -> list[str]:
-    """The cross-check and accuracy lines of one verify.CrossCheck, and why a run stopped.
+    """The cross-check, coefficient audit and accuracy lines of one verify.CrossCheck, and why a
+    run stopped.
 
     Each verdict is for the figure on its line, over the ticks compared; a run that stopped
     early gets its own FAIL line, with the status by its name (emit.STATUS_CODES).
@@ -62,8 +63,19 @@ def cross_check_lines(c, dt: float) -> list[str]:
         lines = [row(f"cross-check {c.precision}", None, "nothing to compare: no tick completed")]
     else:
         lines = [row(f"cross-check {c.precision}", c.max_difference <= c.tolerance,
-                     f"max |C - reference| = {c.max_difference:.3g} (bound {c.tolerance:.3g}) "
-                     f"in {c.worst_state} at {_at(c.worst_tick, dt)}; {c.compared} ticks")]
+                     f"max |C - reference| = {c.max_difference:.3g} (bound {c.tolerance:.3g}, "
+                     f"ratio {c.ratio:.2g}) in {c.worst_state} at {_at(c.worst_tick, dt)}; "
+                     f"{c.compared} ticks")]
+        if c.state_ratios:
+            lines.append(row("", None, "observed/bound per state: " + ", ".join(
+                f"{name} {ratio:.2g}" for name, ratio in c.state_ratios.items())))
+    if c.coefficients is not None:
+        a = c.coefficients
+        lines.append(row(f"coefficients {c.precision}", a.passed,
+                         f"every literal of the C ({a.literals}) equals the correctly rounded "
+                         "exact value of the IR" if a.passed else
+                         f"{len(a.problems)} of {a.literals} literals differ from the IR"))
+        lines += [row("", None, problem) for problem in a.problems]
     if c.accuracy_compared == 0:
         lines.append(row(f"accuracy {c.precision}", None, "not measured: no tick completed"))
     else:
@@ -312,9 +324,8 @@ def advice_lines(advice) -> list[str]:
                  "it simulated; ops/tick = floating-point operations per tick; ops/s = "
                  "floating-point operations per simulated second")
     if any(r.cost_note != "counted" for r in advice.methods):
-        lines.append("  ops/tick is counted on the generated step for explicit methods; other "
-                     "kinds are estimated (LU factorization 2/3 n^3 and each solve 2 n^2 for n "
-                     "unknowns, the Newton iterations the short run took)")
+        lines.append("  ops/tick is counted on the generated step; for methods with a Newton "
+                     "loop, with the iterations per solve the short run took")
     if advice.chosen:
         lines.append(f"chosen method {advice.chosen}: max stable dt "
                      f"{_seconds(advice.chosen_max_stable_dt)}")
