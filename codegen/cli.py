@@ -515,9 +515,11 @@ def demo(out_dir):
     method = builtin(DEMO_METHOD)
     say(f"model {model.name} from {model_path.name}: {model.nx} states, "
         f"{len(model.inputs)} input(s)")
+    gate = gate_before_run(model, method, DEMO_DT, 1, model_path, force_run=False)
     written = generate(model, method, DEMO_DT, 1, DEMO_PRECISION).write(out_dir)
     cost = step_cost(simplify(discretize(model, method, DEMO_DT)))
-    report = run_check(model, method, DEMO_DT, 1, ("float", "double"), DEMO_TICKS, progress=say)
+    report = run_check(model, method, DEMO_DT, 1, ("float", "double"), DEMO_TICKS, progress=say,
+                       stability=gate)
     outcome = CheckOutcome(report, method.name)
     echo_lines(demo_lines(written, method, DEMO_DT, DEMO_PRECISION, cost))
     echo_lines(check_lines(outcome))
