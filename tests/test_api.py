@@ -3,7 +3,6 @@ labelled results, tunable parameters per run, committed files, and the README's 
 
 from __future__ import annotations
 
-import re
 import shutil
 
 import numpy as np
@@ -15,7 +14,7 @@ from codegen.errors import CheckError, EmitError
 from codegen.model import State, define
 from codegen.run import NOT_RUN, Replay
 
-from conftest import EXAMPLES, ROOT
+from conftest import EXAMPLES, ROOT, readme_block
 
 HEATER = EXAMPLES / "heater.toml"
 # The heater's numbers (examples/heater.toml): P = 40 W, R_th = 2.5 K/W, C_th = 120 J/K (tunable),
@@ -164,17 +163,10 @@ def test_import_codegen_is_light_and_names_the_api():
         codegen.no_such_name  # noqa: B018
 
 
-def readme_api_example() -> str:
-    """The Python block of the README's section 'Python API'."""
-    text = (ROOT / "README.md").read_text(encoding="utf-8")
-    section = text.split("## Python API", 1)[1]
-    return re.search(r"```python\n(.*?)```", section, re.S).group(1)
-
-
 def test_the_readme_example_runs_verbatim(tmp_path, monkeypatch):
     shutil.copytree(EXAMPLES, tmp_path / "examples")
     monkeypatch.chdir(tmp_path)
-    code = readme_api_example()
+    code = readme_block("### Python API", "python")
     assert len([line for line in code.splitlines() if line.strip()]) <= 9
     namespace: dict = {}
     exec(compile(code, "README.md", "exec"), namespace)  # noqa: S102 - the README's own code
