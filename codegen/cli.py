@@ -451,6 +451,122 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
         raise click.exceptions.Exit(1)
 
 
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@method_options
+@click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Tick period in seconds.")
+@click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Method steps per tick.")
+@click.option("--precision", type=click.Choice(["float", "double", "both"]), default="both",
+              show_default=True, help="Which builds to check and fingerprint.")
+@click.option("--ticks", type=click.IntRange(min=1), default=DEFAULT_CHECK_TICKS,
+              show_default=True, help="Length of the cross-check run.")
+@click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+              default=1e-2, show_default=True,
+              help="Accuracy target of the check and of the advice, as a fraction of each "
+                   "state's full scale.")
+@click.option("--target", "target_names", multiple=True, metavar="NAME|FILE",
+              shell_complete=complete_targets,
+              help="Also cross-compile, run and measure on this target (repeatable).")
+@click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
+              help="A folder of your own target files, added to the shipped ones.")
+@click.option("--no-advice", is_flag=True,
+              help="Leave out the advice table (it takes from seconds to a minute on large "
+                   "models).")
+@click.option("--no-order", is_flag=True, help="Skip the order study.")
+@force_run_option
+@click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
+              help="The HTML file to write (one self-contained page).")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print the file written, the verdict and the fingerprints as JSON.")
+@implicit_options
+@units_option
+@quiet_option
+@guarded
+def report(model_path, method_id, tableau_file, dt, substeps, precision, ticks, tolerance,
+           target_names, targets_dir, no_advice, no_order, force_run, out_path, as_json,
+           newton_iterations, newton_tol, linear_solve):
+    """Write a review report of MODEL: one self-contained HTML page to sign off.
+
+    The page holds the model with its equations, the method and tick with the stability
+    picture, the advice table, the check with its pictures, the target figures, the cautions,
+    the command line and the SHA-256 of the model and generated files. Open it in a browser;
+    it prints readably. Exit status 1 when a check fails (the page is written anyway).
+    """
+    import tempfile
+
+    from .methods import tolerance_note
+    from .pipeline import generate
+    from .report import CheckOutcome
+    from .report.html import Picture, Review, fingerprints, review_html
+    from .report.json import check_data, json_text
+    from .report.plots import check_pictures, stability_region
+    from .targets import check_on_targets, load_target
+    from .verify import check as run_check
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file)
+    gate = gate_before_run(model, method, dt, substeps, model_path, force_run, with_limit=True)
+    targets = [load_target(name, targets_dir) for name in target_names]
+    precisions = precisions_for(precision, targets)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    advice = None
+    if not no_advice:
+        from .advice import advise as run_advice, candidates
+
+        say("advice over the operating envelope")
+        advice = run_advice(model, method, dt, tolerance, methods=candidates(), progress=say)
+    checked = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
+                        progress=say, accuracy=tolerance, options=options, stability=gate)
+    target_reports = tuple(check_on_targets(model, method, dt, substeps, precisions, ticks,
+                                            targets, options, progress=say))
+    outcome = CheckOutcome(checked, method.name, (), target_reports,
+                           method_note=tolerance_note(method))
+    files = []
+    for p in precisions:
+        csource = generate(model, method, dt, substeps, p, **options)
+        files += [(f"{name} ({p})", text) for name, text in csource.files]
+    method_args = ["--tableau", str(tableau_file)] if tableau_file else ["--method", method.id]
+    regenerate = tuple(shlex.join(["tickwright", "emit", str(model_path), *method_args, "--dt",
+                                   repr(dt), "--substeps", str(substeps), "--precision", p,
+                                   "--out", "<folder>"]) for p in precisions)
+    with tempfile.TemporaryDirectory(prefix="tickwright-report-") as tmp:
+        say("pictures")
+        if advice is not None:
+            values = advice.eigenvalues
+        else:
+            from .advice.envelope import eigenvalues, envelope
+
+            values = eigenvalues(model, envelope(model)[0])[0]
+        pictures = [Picture(f"Stability region of {method.id} (shaded) with h·λ over the "
+                            f"operating envelope at dt = {dt:g} s",
+                            stability_region(method, values * (dt / substeps),
+                                             Path(tmp) / "stability.svg"))]
+        for path in check_pictures(model, method, dt, substeps, precisions, ticks, checked,
+                                   tmp, "svg", options):
+            kind = "Convergence: error against step size (the slope is the order)" \
+                if path.stem.endswith("convergence") else \
+                "Trajectories: the C builds against the Python reference and solve_ivp"
+            pictures.append(Picture(kind, path))
+        review = Review(model=model, method=method, dt=dt, substeps=substeps, outcome=outcome,
+                        gate=gate, advice=advice, pictures=tuple(pictures), files=tuple(files),
+                        command=command_line(), regenerate=regenerate,
+                        units_checked=not click.get_current_context().meta.get(NO_UNITS_KEY))
+        page = review_html(review)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    tmp_path = out_path.with_name(out_path.name + ".tmp")
+    tmp_path.write_text(page, encoding="utf-8", newline="\n")
+    tmp_path.replace(out_path)
+    if as_json:
+        click.echo(json_text(dict(report=str(out_path), passed=review.passed,
+                                  check=check_data(outcome), fingerprints=fingerprints(review))))
+    else:
+        click.echo(f"{out_path}: review report, verdict {'PASS' if review.passed else 'FAIL'}")
+    if not review.passed:
+        raise click.exceptions.Exit(1)
+
+
 @main.command("targets")
 @click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
               help="A folder of your own target files, added to the shipped ones.")
