@@ -69,9 +69,14 @@ def say(message: str) -> None:
     ctx = click.get_current_context(silent=True)
     if ctx is not None and ctx.meta.get(QUIET_KEY):
         return
-    if not sys.stderr.isatty():
+    if not stderr_is_terminal():
         return
     click.echo(f"... {message}", err=True)
+
+
+def stderr_is_terminal() -> bool:
+    """Whether progress has a person to read it: stderr is a terminal, not a file or a pipe."""
+    return sys.stderr.isatty()
 
 
 def quiet_option(fn):
