@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from . import reference as python_reference
-from .build import BuiltModule, build, build_system_files
+from .build import BuiltModule, build, build_system_files, refuse_other_model
 from .emit import STATUS_CODES, CSource, FileDifference
 from .errors import CheckError, EmitError
 from .inputs import not_tunable, parameter_table
@@ -72,7 +72,8 @@ class CompiledModel:
     model, method: what the C was generated from; dt: the tick in s; substeps: method steps per
     tick; precision: 'float' or 'double'; csource: the C that was built (generated in memory, or
     read from sources); built: the loaded cffi module (ffi, lib); options: the generation options
-    of implicit methods; sources: the folder the C was read from, or None.
+    of implicit methods; sources: the folder the C was read from, or None; error_estimate:
+    whether the C has <name>_advance_with_error().
     """
 
     model: Model
@@ -84,6 +85,7 @@ class CompiledModel:
     built: BuiltModule = field(repr=False)
     options: dict = field(default_factory=dict, repr=False)
     sources: Path | None = None
+    error_estimate: bool = False
 
     def __post_init__(self):
         if not self.dt > 0:
@@ -250,7 +252,8 @@ class CompiledModel:
         """The C the model, method and options generate now (with the build files when asked),
         whatever was built."""
         csource = self.csource if self.sources is None else generate(
-            self.model, self.method, self.dt, self.substeps, self.precision, **self.options)
+            self.model, self.method, self.dt, self.substeps, self.precision,
+            error_estimate=self.error_estimate, **self.options)
         if not build_files:
             return csource
         from dataclasses import replace
@@ -260,7 +263,9 @@ class CompiledModel:
     def write(self, folder: str | Path, force: bool = False,
               build_files: bool = False) -> list[Path]:
         """Write the generated files into folder (see emit.CSource.write); build_files adds the
-        CMake and Make fragments."""
+        CMake and Make fragments (one model per folder)."""
+        if build_files:
+            refuse_other_model(folder, self.model.name)
         return self.generated(build_files).write(folder, force=force)
 
     def stale_files(self, folder: str | Path, build_files: bool = False) -> list[FileDifference]:
@@ -361,4 +366,4 @@ def compile_model(model: str | Path | Model, method: str | Path | Method, dt: fl
     built = build(csource, model, workdir)                    # CSource -> loaded cffi module
     return CompiledModel(model=model, method=method, dt=float(dt), substeps=substeps,
                          precision=precision, csource=csource, built=built, options=options,
-                         sources=folder)
+                         sources=folder, error_estimate=error_estimate)

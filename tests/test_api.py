@@ -173,3 +173,13 @@ def test_the_readme_example_runs_verbatim(tmp_path, monkeypatch):
     run = namespace["run"]
     assert isinstance(run, Replay) and (tmp_path / "heater.csv").exists()
     assert run.columns == ("t", "T", "T_surface")
+
+
+def test_committed_files_with_an_error_estimate_are_up_to_date(tmp_path):
+    # bs3's embedded pair adds heater_advance_with_error(); the staleness check regenerates with it.
+    fresh = codegen.compile_model(HEATER, "bs3", TICK, error_estimate=True)
+    fresh.write(tmp_path)
+    assert "heater_advance_with_error" in (tmp_path / "heater.h").read_text()
+    shipped = codegen.compile_model(HEATER, "bs3", TICK, sources=tmp_path, error_estimate=True)
+    assert shipped.stale_files(tmp_path) == []
+    assert codegen.compile_model(HEATER, "bs3", TICK).stale_files(tmp_path) != []

@@ -96,7 +96,7 @@ class CSource:
             path = Path(out_dir) / name
             try:
                 on_disk = path.read_text(encoding="utf-8", errors="replace")
-            except (FileNotFoundError, IsADirectoryError):
+            except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
                 found.append(FileDifference(path, 0, "", ""))
                 continue
             want, have = text.splitlines(), on_disk.splitlines()

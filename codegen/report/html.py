@@ -158,7 +158,7 @@ def model_section(model) -> dict:
     """The model's tables: states with their rate equations, inputs, parameters, outputs."""
     t = model.time
     return dict(
-        name=model.name, description=model.description,
+        name=model.name, description=model.description.rstrip(". "),
         source=Path(model.source).name, time=t,
         states=[dict(name=s.name, unit=s.unit, initial=_number(s.initial), range=_range(s),
                      description=s.description, equation=equation(f"d/dt {s.name}", s.rate),
