@@ -234,6 +234,7 @@ class CompiledModel:
                        accuracy: float = DEFAULT_ACCURACY) -> CrossCheck:
         """cross_check, raising AssertionError with the check's lines when it does not pass (for
         a test: "the C we ship still matches the model")."""
+        __tracebackhide__ = True  # pytest shows the test's line and this message, not our frame
         from .report.text import cross_check_lines
 
         result = self.cross_check(inputs, ticks, parameters, accuracy)
