@@ -181,8 +181,15 @@ def test_demo_runs_the_whole_job(tmp_path):
 
 
 def test_version():
+    import tomllib
+
+    import codegen
+
     result = run("--version")
-    assert result.exit_code == 0 and result.output == "tickwright, version 0.1.0\n"
+    assert result.exit_code == 0 and result.output == f"tickwright, version {codegen.__version__}\n"
+    # ... which is the distribution's version in pyproject.toml.
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"]
+    assert codegen.__version__ == project["version"]
 
 
 @pytest.mark.parametrize("args, code, fragment", [

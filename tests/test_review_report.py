@@ -56,7 +56,7 @@ def test_the_page_needs_nothing_else(report):
         assert svg.documentElement.tagName == "svg"
 
 
-def test_the_page_holds_what_a_review_signs_off(report, tmp_path):
+def test_the_page_holds_what_a_review_signs_off(report):
     out, page, _ = report
     for section in ("Cautions", "Model heater", "Method and tick", "Advice", "Checks", "Targets",
                     "Command line and fingerprints", "Sign-off"):
@@ -150,7 +150,8 @@ def test_a_failed_check_writes_the_page_with_its_verdict_and_exits_1(tmp_path):
 
 def test_an_unstable_tick_writes_nothing(tmp_path):
     out = tmp_path / "r.html"
-    # The axis' electrical pole near -2970/s: Euler at 1 ms has h*lambda = -2.97, beyond -2.
+    # The axis' electrical pole near -2970/s: Euler at 1 ms has h*lambda = -2.97, beyond -2, the
+    # end of forward Euler's region |1 + z| <= 1 on the real axis (common practice, no source).
     result = run("report", EXAMPLES / "axis.toml", "--method", "euler", "--dt", "1e-3",
                  "--out", out)
     assert result.exit_code == 1 and "--force-run" in result.output and not out.exists()
