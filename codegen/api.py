@@ -40,7 +40,7 @@ from .run import Replay, run_built
 from .verify import CrossCheck, DEFAULT_ACCURACY, cross_check as run_cross_check
 from .verify.scenario import tunable_as_inputs
 
-__all__ = ["CompiledModel", "compile_model"]
+__all__ = ["CompiledModel", "compile_model", "reference_run"]
 
 # Ticks of cross_check() without inputs: the input sweep of `tickwright check`, the same length.
 CHECK_TICKS = 200

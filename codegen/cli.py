@@ -316,7 +316,8 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     method = resolve_method(method_id, tableau_file)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
-    say(f"generate {model.name} ({model.nx} states) with {method.id}")
+    say(f"generate {model.name} ({model.nx} state{'' if model.nx == 1 else 's'}) with "
+        f"{method.id}")
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
                        **options)
     if build_files:

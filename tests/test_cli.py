@@ -238,7 +238,7 @@ def test_progress_only_on_a_terminal_and_never_with_quiet(monkeypatch, tmp_path,
     args = ["emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", tmp_path]
     result = run(*args, *(["--quiet"] if quiet else []))
     assert result.exit_code == 0, result.output
-    assert ("... generate heater (1 states) with rk4" in result.stderr) == shown
+    assert ("... generate heater (1 state) with rk4" in result.stderr) == shown
     assert result.stdout.splitlines() == [str(tmp_path / "heater.h"), str(tmp_path / "heater.c")]
 
 
