@@ -123,7 +123,7 @@ def strict_compile(csource: CSource, cc: str | None = None, extra: tuple[str, ..
 
 
 
-# ---- build-system files ---------------------------------------------------------------------------
+# ---- build-system files --------------------------------------------------------------------------
 
 # The CMake fragment's name: add_subdirectory() reads this name, so one model per folder.
 CMAKE_FRAGMENT = "CMakeLists.txt"

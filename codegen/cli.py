@@ -377,7 +377,8 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
 @click.option("--target", "target_names", multiple=True, metavar="NAME|FILE",
-              shell_complete=complete_targets, help="Also cross-compile and run on this target (see 'tickwright targets'); "
+              shell_complete=complete_targets,
+              help="Also cross-compile and run on this target (see 'tickwright targets'); "
                    "repeatable. Without --precision, the target's default precision is used.")
 @click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
               help="A folder of your own target files, added to the shipped ones.")
