@@ -10,14 +10,16 @@ from __future__ import annotations
 import hashlib
 import importlib.util
 import os
+import re
 import shutil
 import subprocess
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-from .emit import CSource, render
-from .errors import BuildError
+from . import __version__
+from .emit import GENERATED_MARKER, CSource, comment_text, file_note, render
+from .errors import BuildError, EmitError
 
 # The warning set every generated file must pass (a superset of the one promised in the README).
 STRICT_FLAGS = ("-std=c99", "-Wall", "-Wextra", "-Wpedantic", "-Wconversion", "-Wsign-conversion",
@@ -119,3 +121,64 @@ def strict_compile(csource: CSource, cc: str | None = None, extra: tuple[str, ..
                              f"{' '.join(cmd)}: {first}", cmd, proc.stderr)
     return " ".join(cmd)
 
+
+
+# ---- build-system files --------------------------------------------------------------------------
+
+# The CMake fragment's name: add_subdirectory() reads this name, so one model per folder.
+CMAKE_FRAGMENT = "CMakeLists.txt"
+# Flags of the generated source in the users' builds: the strict set and the no-contraction flag
+# the checks compile with (optimization is the user's choice).
+USER_FLAGS = STRICT_FLAGS + FP_FLAGS
+# The model a generated build file was made for, from its first line.
+_FRAGMENT_MODEL = re.compile(r"from model '([a-z][a-z0-9_]*)'")
+
+
+def build_system_files(csource: CSource, model) -> tuple[tuple[str, str], ...]:
+    """The build files of one model's generated C: CMAKE_FRAGMENT (a static library target) and
+    <name>.mk (a Make fragment with sources, objects and flags), as (file name, text) pairs.
+
+    They name the model file and its SHA-256 like the C preamble, never a folder.
+    """
+    prefix = csource.prefix
+    preamble = [f"{GENERATED_MARKER} {__version__} from model '{prefix}'.",
+                file_note("Model", model.source, model.digest)
+                or "Model built in Python (no model file).",
+                "Do not edit: regenerate with tickwright emit --build-files."]
+    variable = prefix.upper()
+    cmake = render("cmake.txt.j2", preamble=preamble, library=prefix,
+                   source=csource.source_name, header=csource.header_name,
+                   flags=list(USER_FLAGS), flags_variable=f"{variable}_C_FLAGS",
+                   flags_reference=f"${{{variable}_C_FLAGS}}")
+    make = render("make.mk.j2", preamble=preamble, v=variable, prefix=prefix,
+                  fragment=f"{prefix}.mk", source=csource.source_name,
+                  header=csource.header_name, object=f"{prefix}.o", flags=list(USER_FLAGS))
+    return ((CMAKE_FRAGMENT, cmake), (f"{prefix}.mk", make))
+
+
+def refuse_other_model(out_dir: str | Path, prefix: str) -> None:
+    """Raise EmitError when out_dir holds the CMake fragment of another model: each model's
+    build files go to a folder of their own (add_subdirectory reads one CMakeLists.txt)."""
+    path = Path(out_dir) / CMAKE_FRAGMENT
+    try:
+        head = path.read_text(encoding="utf-8", errors="replace")[:400]
+    except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+        return
+    found = _FRAGMENT_MODEL.search(head) if GENERATED_MARKER in head else None
+    if found and found.group(1) != prefix:
+        raise EmitError(f"{path}: is the build file of model '{found.group(1)}'; emit the build "
+                        f"files of '{prefix}' into a folder of its own")
+
+
+def toolchain_file(target) -> str:
+    """A CMake toolchain file for a cross-compiling target (targets.Target): its compiler and its
+    flags (but -std and -O, which the build file and the build type give)."""
+    if target.is_host:
+        raise EmitError(f"--cmake-toolchain: '{target.id}' builds with this computer's own "
+                        "compiler and needs no toolchain file")
+    preamble = [f"{GENERATED_MARKER} {__version__}: CMake toolchain file of target "
+                f"'{target.id}'.",
+                comment_text(target.description) + "."]
+    cflags = [f for f in target.cflags if not f.startswith(("-std=", "-O"))]
+    return render("toolchain.cmake.j2", preamble=preamble, cc=target.cc, cflags=cflags,
+                  ldflags=list(target.ldflags))

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import difflib
 import functools
+import shlex
+import sys
 from pathlib import Path
 
 import click
@@ -54,9 +57,51 @@ def echo_lines(lines, err: bool = False) -> None:
         click.echo(line, err=err)
 
 
+# Where --quiet leaves its answer for say(): click's per-invocation scratch space.
+QUIET_KEY = "tickwright.quiet"
+# Where the group keeps the arguments it was given, for the report's exact command line.
+ARGS_KEY = "tickwright.args"
+
+
 def say(message: str) -> None:
-    """Progress on stderr, so stdout stays clean for --json."""
+    """Progress on stderr, so stdout stays clean for --json; only to a terminal, never with
+    --quiet."""
+    ctx = click.get_current_context(silent=True)
+    if ctx is not None and ctx.meta.get(QUIET_KEY):
+        return
+    if not stderr_is_terminal():
+        return
     click.echo(f"... {message}", err=True)
+
+
+def stderr_is_terminal() -> bool:
+    """Whether progress has a person to read it: stderr is a terminal, not a file or a pipe."""
+    return sys.stderr.isatty()
+
+
+def quiet_option(fn):
+    """--quiet for every command with long work; say() reads it from the context."""
+
+    def remember(ctx, _param, value):
+        ctx.meta[QUIET_KEY] = value
+
+    return click.option("--quiet", "-q", is_flag=True, expose_value=False, callback=remember,
+                        help="No progress messages on stderr (they are shown only on a "
+                             "terminal anyway).")(fn)
+
+
+def complete_methods(_ctx, _param, incomplete: str):
+    """Shell completion of --method: the built-in method ids."""
+    from .methods import builtin_ids
+
+    return [m for m in builtin_ids() if m.startswith(incomplete)]
+
+
+def complete_targets(_ctx, _param, incomplete: str):
+    """Shell completion of --target: the shipped target ids."""
+    from .targets import load_targets
+
+    return [t for t in load_targets() if t.startswith(incomplete)]
 
 
 def method_options(fn):
@@ -64,7 +109,7 @@ def method_options(fn):
                       help="A TOML file with your own method: a Butcher tableau (name, a, b, c"
                            "[, order, b_hat]) or a Rosenbrock method (kind = \"rosenbrock\"; see "
                            "the README).")(fn)
-    fn = click.option("--method", "method_id", metavar="NAME",
+    fn = click.option("--method", "method_id", metavar="NAME", shell_complete=complete_methods,
                       help="A built-in method id (see 'tickwright methods').")(fn)
     return fn
 
@@ -130,6 +175,13 @@ def gate_before_run(model, method, dt, substeps, model_path, force_run: bool,
     return gate
 
 
+def precisions_for(precision: str, targets) -> tuple[str, ...]:
+    """The builds a check makes: 'both' is float and double, or each target's default."""
+    if precision == "both" and targets:
+        return tuple(sorted({t.default_precision for t in targets}))
+    return ("float", "double") if precision == "both" else (precision,)
+
+
 def generation_options(method, newton_iterations, newton_tol, linear_solve) -> dict:
     """The implicit-solver options for generate(); an explicit method takes none."""
     if method.is_explicit:
@@ -187,7 +239,31 @@ def with_values(model, settings: dict):
                                            for p in model.parameters))
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class Commands(click.Group):
+    """The command group: it suggests a close command name for a mistyped one, and keeps the
+    arguments it was given (the review report shows the exact command line)."""
+
+    def parse_args(self, ctx, args):
+        ctx.meta[ARGS_KEY] = list(args)
+        return super().parse_args(ctx, args)
+
+    def resolve_command(self, ctx, args):
+        name = args[0] if args else ""
+        if name and not name.startswith("-") and self.get_command(ctx, name) is None:
+            close = difflib.get_close_matches(name, self.list_commands(ctx), n=1)
+            if close:
+                raise click.UsageError(f"no command '{name}' (did you mean '{close[0]}'?)", ctx)
+        return super().resolve_command(ctx, args)
+
+
+def command_line() -> str:
+    """The command line as given (tickwright and its arguments), quoted for a shell."""
+    ctx = click.get_current_context(silent=True)
+    args = ctx.meta.get(ARGS_KEY, sys.argv[1:]) if ctx is not None else sys.argv[1:]
+    return shlex.join(["tickwright", *args])
+
+
+@click.group(cls=Commands, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="tickwright")
 @click.option("--verbose", is_flag=True,
               help="When a C compiler fails, also print its command and its whole output "
@@ -210,22 +286,63 @@ def main(verbose):
 @click.option("--error-estimate", is_flag=True,
               help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
                    "local error estimate (methods with b_hat, such as bs3 and dp5).")
+@click.option("--build-files", is_flag=True,
+              help="Also write CMakeLists.txt (a static library target) and <name>.mk (a Make "
+                   "fragment) with the flags the checks use; one model per folder.")
+@click.option("--check", "check_only", is_flag=True,
+              help="Write nothing: exit 0 when the files in --out are exactly what this command "
+                   "generates, else exit 1 with one line per differing file (for CI).")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print the files written (or, with --check, the differences) as JSON.")
 @implicit_options
 @units_option
+@quiet_option
 @guarded
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
-         error_estimate, newton_iterations, newton_tol, linear_solve):
-    """Write the C files for MODEL: <name>.h and <name>.c."""
+         error_estimate, build_files, check_only, as_json, newton_iterations, newton_tol,
+         linear_solve):
+    """Write the C files for MODEL: <name>.h and <name>.c.
+
+    With --check, compare instead: exit 1 when a file in --out is missing or differs from what
+    the current model, method and options generate.
+    """
+    from dataclasses import replace
+
+    from .build import build_system_files, refuse_other_model
     from .pipeline import generate
+    from .report.json import json_text
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
+    say(f"generate {model.name} ({model.nx} state{'' if model.nx == 1 else 's'}) with "
+        f"{method.id}")
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
                        **options)
-    for path in csource.write(out_dir, force=force):
-        click.echo(str(path))
+    if build_files:
+        csource = replace(csource, files=csource.files + build_system_files(csource, model))
+    if check_only:
+        differences = csource.differences(out_dir)
+        if as_json:
+            click.echo(json_text(dict(
+                up_to_date=not differences, checked=[str(out_dir / n) for n, _ in csource.files],
+                differences=[dict(path=str(d.path), line=d.line, expected=d.expected,
+                                  found=d.found) for d in differences])))
+        else:
+            echo_lines(d.summary for d in differences)
+            if not differences:
+                click.echo(f"{out_dir}: up to date ({', '.join(n for n, _ in csource.files)})")
+        if differences:
+            raise click.exceptions.Exit(1)
+        return
+    if build_files:
+        refuse_other_model(out_dir, model.name)
+    written = csource.write(out_dir, force=force)
+    if as_json:
+        click.echo(json_text(dict(written=[str(p) for p in written])))
+    else:
+        echo_lines(str(path) for path in written)
 
 
 @main.command()
@@ -260,12 +377,14 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
 @click.option("--target", "target_names", multiple=True, metavar="NAME|FILE",
+              shell_complete=complete_targets,
               help="Also cross-compile and run on this target (see 'tickwright targets'); "
                    "repeatable. Without --precision, the target's default precision is used.")
 @click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
               help="A folder of your own target files, added to the shipped ones.")
 @implicit_options
 @units_option
+@quiet_option
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, inputs_path,
           set_pairs, force_run, no_order, tolerance, as_json, error_estimate, plot_dir,
@@ -305,10 +424,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     gate = gate_before_run(with_values(model, settings), method, dt, substeps, model_path,
                            force_run, with_limit=True)
     targets = [load_target(name, targets_dir) for name in target_names]
-    if precision == "both" and targets:
-        precisions = tuple(sorted({t.default_precision for t in targets}))
-    else:
-        precisions = ("float", "double") if precision == "both" else (precision,)
+    precisions = precisions_for(precision, targets)
     if error_estimate and method.b_hat is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
@@ -342,17 +458,142 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
         raise click.exceptions.Exit(1)
 
 
+@main.command()
+@click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
+@method_options
+@click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+              help="Tick period in seconds.")
+@click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
+              help="Method steps per tick.")
+@click.option("--precision", type=click.Choice(["float", "double", "both"]), default="both",
+              show_default=True, help="Which builds to check and fingerprint.")
+@click.option("--ticks", type=click.IntRange(min=1), default=DEFAULT_CHECK_TICKS,
+              show_default=True, help="Length of the cross-check run.")
+@click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+              default=1e-2, show_default=True,
+              help="Accuracy target of the check and of the advice, as a fraction of each "
+                   "state's full scale.")
+@click.option("--target", "target_names", multiple=True, metavar="NAME|FILE",
+              shell_complete=complete_targets,
+              help="Also cross-compile, run and measure on this target (repeatable).")
+@click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
+              help="A folder of your own target files, added to the shipped ones.")
+@click.option("--no-advice", is_flag=True,
+              help="Leave out the advice table (it takes from seconds to a minute on large "
+                   "models).")
+@click.option("--no-order", is_flag=True, help="Skip the order study.")
+@force_run_option
+@click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
+              help="The HTML file to write (one self-contained page).")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print the file written, the verdict and the fingerprints as JSON.")
+@implicit_options
+@units_option
+@quiet_option
+@guarded
+def report(model_path, method_id, tableau_file, dt, substeps, precision, ticks, tolerance,
+           target_names, targets_dir, no_advice, no_order, force_run, out_path, as_json,
+           newton_iterations, newton_tol, linear_solve):
+    """Write a review report of MODEL: one self-contained HTML page to sign off.
+
+    The page holds the model with its equations, the method and tick with the stability
+    picture, the advice table, the check with its pictures, the target figures, the cautions,
+    the command line and the SHA-256 of the model and generated files. Open it in a browser;
+    it prints readably. Exit status 1 when a check fails (the page is written anyway).
+    """
+    import tempfile
+
+    from .methods import tolerance_note
+    from .pipeline import generate
+    from .report import CheckOutcome
+    from .report.html import Picture, Review, fingerprints, review_html
+    from .report.json import check_data, json_text
+    from .report.plots import check_pictures, stability_region
+    from .targets import check_on_targets, load_target
+    from .verify import check as run_check
+
+    model = load(model_path)
+    method = resolve_method(method_id, tableau_file)
+    gate = gate_before_run(model, method, dt, substeps, model_path, force_run, with_limit=True)
+    targets = [load_target(name, targets_dir) for name in target_names]
+    precisions = precisions_for(precision, targets)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    advice = None
+    if not no_advice:
+        from .advice import advise as run_advice, candidates
+
+        say("advice over the operating envelope")
+        advice = run_advice(model, method, dt, tolerance, methods=candidates(), progress=say)
+    checked = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
+                        progress=say, accuracy=tolerance, options=options, stability=gate)
+    target_reports = tuple(check_on_targets(model, method, dt, substeps, precisions, ticks,
+                                            targets, options, progress=say))
+    outcome = CheckOutcome(checked, method.name, (), target_reports,
+                           method_note=tolerance_note(method))
+    files = []
+    for p in precisions:
+        csource = generate(model, method, dt, substeps, p, **options)
+        files += [(f"{name} ({p})", text) for name, text in csource.files]
+    method_args = ["--tableau", str(tableau_file)] if tableau_file else ["--method", method.id]
+    regenerate = tuple(shlex.join(["tickwright", "emit", str(model_path), *method_args, "--dt",
+                                   repr(dt), "--substeps", str(substeps), "--precision", p,
+                                   "--out", "<folder>"]) for p in precisions)
+    with tempfile.TemporaryDirectory(prefix="tickwright-report-") as tmp:
+        say("pictures")
+        if advice is not None:
+            values = advice.eigenvalues
+        else:
+            from .advice.envelope import eigenvalues, envelope
+
+            values = eigenvalues(model, envelope(model)[0])[0]
+        pictures = [Picture(f"Stability region of {method.id} (shaded) with h·λ over the "
+                            f"operating envelope at dt = {dt:g} s",
+                            stability_region(method, values * (dt / substeps),
+                                             Path(tmp) / "stability.svg"))]
+        for path in check_pictures(model, method, dt, substeps, precisions, ticks, checked,
+                                   tmp, "svg", options):
+            kind = "Convergence: error against step size (the slope is the order)" \
+                if path.stem.endswith("convergence") else \
+                "Trajectories: the C builds against the Python reference and solve_ivp"
+            pictures.append(Picture(kind, path))
+        review = Review(model=model, method=method, dt=dt, substeps=substeps, outcome=outcome,
+                        gate=gate, advice=advice, pictures=tuple(pictures), files=tuple(files),
+                        command=command_line(), regenerate=regenerate,
+                        units_checked=not click.get_current_context().meta.get(NO_UNITS_KEY))
+        page = review_html(review)
+    out_path.parent.mkdir(parents=True, exist_ok=True)
+    tmp_path = out_path.with_name(out_path.name + ".tmp")
+    tmp_path.write_text(page, encoding="utf-8", newline="\n")
+    tmp_path.replace(out_path)
+    if as_json:
+        click.echo(json_text(dict(report=str(out_path), passed=review.passed,
+                                  check=check_data(outcome), fingerprints=fingerprints(review))))
+    else:
+        click.echo(f"{out_path}: review report, verdict {'PASS' if review.passed else 'FAIL'}")
+    if not review.passed:
+        raise click.exceptions.Exit(1)
+
+
 @main.command("targets")
 @click.option("--targets-dir", type=click.Path(file_okay=False, exists=True, path_type=Path),
               help="A folder of your own target files, added to the shipped ones.")
 @click.option("--json", "as_json", is_flag=True, help="Print the targets as JSON.")
+@click.option("--cmake-toolchain", "toolchain", metavar="NAME|FILE",
+              shell_complete=complete_targets,
+              help="Print a CMake toolchain file for this cross-compiling target instead (its "
+                   "compiler and flags), for the CMakeLists.txt of emit --build-files.")
 @guarded
-def targets_command(targets_dir, as_json):
+def targets_command(targets_dir, as_json, toolchain):
     """List the targets: precision, compiler and the command that runs a program on each."""
     from .report.json import json_text
     from .report.text import targets_table
-    from .targets import load_targets
+    from .targets import load_target, load_targets
 
+    if toolchain:
+        from .build import toolchain_file
+
+        click.echo(toolchain_file(load_target(toolchain, targets_dir)), nl=False)
+        return
     targets = load_targets(targets_dir)
     if as_json:
         click.echo(json_text([t.to_dict() for t in targets.values()]))
@@ -372,11 +613,14 @@ def targets_command(targets_dir, as_json):
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
 @set_option
 @force_run_option
+@click.option("--json", "as_json", is_flag=True,
+              help="Print what was written (file, rows, ticks taken, status) as JSON.")
 @implicit_options
 @units_option
+@quiet_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path, set_pairs, force_run, newton_iterations, newton_tol, linear_solve):
+           out_path, set_pairs, force_run, as_json, newton_iterations, newton_tol, linear_solve):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV.
 
     Stops at once when dt is beyond the stability limit (unless --force-run).
@@ -400,9 +644,16 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
     result = run_replay(model, method, dt, inputs, substeps, precision, parameters=parameters,
                         **options)
     result.save_csv(out_path)
+    if as_json:
+        from .report.json import json_text
+
+        click.echo(json_text(dict(out=str(out_path), rows=result.completed + 1,
+                                  ticks=result.ticks, completed=result.completed,
+                                  status=result.status_name, finished=result.finished)))
     if not result.finished:
         fail(replay_stop_message(inputs_path or model_path, out_path, result, dt))
-    click.echo(replay_done_line(out_path, result))
+    if not as_json:
+        click.echo(replay_done_line(out_path, result))
 
 
 @main.command()
@@ -447,6 +698,7 @@ def methods(tableau_file, as_json):
 @click.option("--plot-format", type=click.Choice(["png", "svg"]), default="png",
               show_default=True, help="File format of the pictures.")
 @units_option
+@quiet_option
 @guarded
 def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, as_json,
            plot_dir, plot_format):
@@ -471,7 +723,7 @@ def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, 
         if method is not None:
             known[method.id] = method
         for path in advice_pictures(model, advice, known, plot_dir, plot_format):
-            say(f"picture: {path}")
+            click.echo(f"picture: {path}", err=True)
     if as_json:
         click.echo(json_text(advice.to_dict()))
     else:
@@ -497,8 +749,11 @@ DEMO_OUT = "tickwright-demo"
 @click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path),
               default=Path(DEMO_OUT), show_default=True,
               help="Folder to write the demo's C files into.")
+@click.option("--json", "as_json", is_flag=True,
+              help="Print the files written and the check report as JSON.")
+@quiet_option
 @guarded
-def demo(out_dir):
+def demo(out_dir, as_json):
     """Run the whole job on the bundled demo model: emit, build, cross-check, report."""
     from .advice.cost import step_cost
     from .discretize import discretize
@@ -521,7 +776,14 @@ def demo(out_dir):
     report = run_check(model, method, DEMO_DT, 1, ("float", "double"), DEMO_TICKS, progress=say,
                        stability=gate)
     outcome = CheckOutcome(report, method.name)
-    echo_lines(demo_lines(written, method, DEMO_DT, DEMO_PRECISION, cost))
-    echo_lines(check_lines(outcome))
+    if as_json:
+        from .report.json import check_data, json_text
+
+        click.echo(json_text(dict(written=[str(p) for p in written], method=method.id,
+                                  dt=DEMO_DT, precision=DEMO_PRECISION, cost=cost.to_dict(),
+                                  check=check_data(outcome))))
+    else:
+        echo_lines(demo_lines(written, method, DEMO_DT, DEMO_PRECISION, cost))
+        echo_lines(check_lines(outcome))
     if not outcome.passed:
         raise click.exceptions.Exit(1)

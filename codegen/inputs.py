@@ -97,18 +97,7 @@ def parameter_settings(model: Model, pairs) -> dict[str, float]:
         if not sep or not name:
             raise CheckError(f"{where}: expected NAME=VALUE with a tunable parameter's name")
         if name not in tunable:
-            if any(p.name == name for p in model.parameters):
-                raise CheckError(f"{where}: parameter '{name}' is not tunable (its value is "
-                                 f"baked into the C); set parameters.{name}.tunable = true in "
-                                 "the model, or change its value there")
-            hint = difflib.get_close_matches(name, tunable, n=1) or \
-                difflib.get_close_matches(name, [p.name for p in model.parameters], n=1)
-            fixed = f" It is not tunable: set parameters.{hint[0]}.tunable = true in the model" \
-                if hint and hint[0] not in tunable else ""
-            known = f"did you mean '{hint[0]}'?{fixed}" if hint else \
-                f"the tunable parameters are {', '.join(tunable)}" if tunable else \
-                "the model has no tunable parameter"
-            raise CheckError(f"{where}: no tunable parameter '{name}' ({known})")
+            raise CheckError(f"{where}: {not_tunable(model, name)}")
         try:
             value = float(text)
         except ValueError:
@@ -119,6 +108,22 @@ def parameter_settings(model: Model, pairs) -> dict[str, float]:
             raise CheckError(f"{where}: '{name}' is set twice; keep one --set {name}=...")
         settings[name] = value
     return settings
+
+
+def not_tunable(model: Model, name: str) -> str:
+    """Why name cannot be set per run (it is no tunable parameter of model), with the fix."""
+    tunable = [p.name for p in model.tunable]
+    if any(p.name == name for p in model.parameters):
+        return (f"parameter '{name}' is not tunable (its value is baked into the C); set "
+                f"parameters.{name}.tunable = true in the model, or change its value there")
+    hint = difflib.get_close_matches(name, tunable, n=1) or \
+        difflib.get_close_matches(name, [p.name for p in model.parameters], n=1)
+    fixed = f" It is not tunable: set parameters.{hint[0]}.tunable = true in the model" \
+        if hint and hint[0] not in tunable else ""
+    known = f"did you mean '{hint[0]}'?{fixed}" if hint else \
+        f"the tunable parameters are {', '.join(tunable)}" if tunable else \
+        "the model has no tunable parameter"
+    return f"no tunable parameter '{name}' ({known})"
 
 
 def parameter_table(model: Model, ticks: int, settings: dict[str, float] | None = None,

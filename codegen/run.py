@@ -10,6 +10,7 @@ outputs (from the C's own outputs function) before the first tick and after ever
 from __future__ import annotations
 
 import csv
+import difflib
 import io
 from dataclasses import dataclass
 from pathlib import Path
@@ -24,6 +25,9 @@ from .reference import Trajectory
 
 # Status value -> name, as the generated header spells it after the prefix (HEATER_NONFINITE).
 STATUS_NAMES = {value: name for name, value, _ in STATUS_CODES}
+# Replay.tick_status of a tick after the one that failed: the run stopped before it. Negative, so
+# that it is none of the generated header's status values (emit.STATUS_CODES, all >= 0).
+NOT_RUN = -1
 
 
 def status_name(value: int) -> str:
@@ -75,9 +79,32 @@ class Replay:
         return self.completed == self.ticks
 
     @property
+    def tick_status(self) -> np.ndarray:
+        """(ticks,) int: the status of every tick asked for: 0 (OK) for a tick taken, the failed
+        tick's status, NOT_RUN (-1) for the ticks after it."""
+        status = np.full(self.ticks, NOT_RUN, dtype=int)
+        status[: self.completed] = 0
+        if self.completed < self.ticks:
+            status[self.completed] = self.status
+        return status
+
+    @property
     def columns(self) -> tuple[str, ...]:
         """The column names of table(): time, then the states, then the outputs."""
         return (self.time_name, *self.state_names, *self.output_names)
+
+    def __getitem__(self, name: str) -> np.ndarray:
+        """One column by name: the time (rows,), a state's or an output's values (rows,)."""
+        if name == self.time_name:
+            return self.t
+        if name in self.state_names:
+            return self.states[:, self.state_names.index(name)]
+        if name in self.output_names:
+            return self.outputs[:, self.output_names.index(name)]
+        hint = difflib.get_close_matches(str(name), self.columns, n=1)
+        raise CheckError(f"run: no column '{name}'" + (f" (did you mean '{hint[0]}'?)" if hint
+                                                       else f"; the columns are "
+                                                            f"{', '.join(self.columns)}"))
 
     def table(self) -> np.ndarray:
         """(rows, 1 + nx + ny): time, states and outputs side by side, in the order of columns."""
@@ -90,6 +117,11 @@ class Replay:
         writer.writerow(self.columns)
         writer.writerows([repr(float(v)) for v in row] for row in self.table())
         return buf.getvalue()
+
+    def to_csv(self, path: str | Path | None = None) -> str | Path:
+        """The table as CSV (see csv_text): its text when path is None, else the file written
+        whole (see save_csv) and its path."""
+        return self.csv_text() if path is None else self.save_csv(path)
 
     def save_csv(self, path: str | Path) -> Path:
         """Write csv_text() to path whole (through a temporary file): never half a file."""

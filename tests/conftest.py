@@ -35,3 +35,50 @@ def write_model(tmp_path):
         return path
 
     return write
+
+
+@pytest.fixture(scope="session")
+def wheel(tmp_path_factory):
+    """The wheel built from the checkout (pip wheel, no dependencies, no build isolation)."""
+    import shutil
+    import subprocess
+    import sys
+
+    out = tmp_path_factory.mktemp("wheel")
+    src = tmp_path_factory.mktemp("src") / "tickwright"
+    # Build from a copy so no build/ or egg-info folder lands in the checkout.
+    shutil.copytree(ROOT, src, ignore=shutil.ignore_patterns(".git", "build", "*.egg-info",
+                                                             "__pycache__", ".pytest_cache"))
+    subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps", "--no-build-isolation",
+                    "-q", "-w", str(out), str(src)], check=True)
+    (path,) = out.glob("tickwright-*.whl")
+    return path
+
+
+@pytest.fixture(scope="session")
+def venv(wheel, tmp_path_factory):
+    """A fresh virtual environment with the wheel installed: its bin folder.
+
+    System site packages provide the dependencies (sympy, numpy, pytest, ...) without a
+    download; the project itself comes from the wheel only, and wins over any other copy.
+    """
+    import subprocess
+    import sys
+
+    folder = tmp_path_factory.mktemp("venv") / "venv"
+    subprocess.run([sys.executable, "-m", "venv", "--system-site-packages", str(folder)],
+                   check=True)
+    subprocess.run([str(folder / "bin" / "python"), "-m", "pip", "install", "-q", "--no-deps",
+                    "--force-reinstall", str(wheel)], check=True)
+    return folder / "bin"
+
+
+def readme_block(heading: str, language: str) -> str:
+    """The first fenced block of language under the README heading (its text, as written)."""
+    import re
+
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    section = text.split(heading + "\n", 1)[1]
+    found = re.search(rf"```{language}\n(.*?)```", section, re.S)
+    assert found, f"README: no {language} block under {heading!r}"
+    return found.group(1)

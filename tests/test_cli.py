@@ -21,7 +21,7 @@ def run(*args):
 
 
 @pytest.mark.parametrize("command", ["emit", "check", "replay", "methods", "advise", "targets",
-                                     "demo"])
+                                     "demo", "report"])
 def test_every_command_has_help(command):
     result = run(command, "--help")
     assert result.exit_code == 0 and "Usage:" in result.output
@@ -172,6 +172,95 @@ def test_demo_runs_the_whole_job(tmp_path):
                    "verdict: PASS"):
         assert needle in result.stdout
     assert sorted(p.name for p in (tmp_path / "demo").iterdir()) == ["axis.c", "axis.h"]
+    result = run("demo", "--out", tmp_path / "demo", "--json")
+    assert result.exit_code == 0, result.output
+    data = json.loads(result.stdout)
+    assert [p.rsplit("/", 1)[1] for p in data["written"]] == ["axis.h", "axis.c"]
+    assert data["method"] == "rk4" and data["check"]["passed"] is True
+    assert data["cost"]["total"] > 0
+
+
+def test_version():
+    import tomllib
+
+    import codegen
+
+    result = run("--version")
+    assert result.exit_code == 0 and result.output == f"tickwright, version {codegen.__version__}\n"
+    # ... which is the distribution's version in pyproject.toml.
+    project = tomllib.loads((ROOT / "pyproject.toml").read_text())["project"]
+    assert codegen.__version__ == project["version"]
+
+
+@pytest.mark.parametrize("args, code, fragment", [
+    (["chek", HEATER], 2, "no command 'chek' (did you mean 'check'?)"),
+    (["emit", HEATER, "--method", "rk5", "--dt", "0.1", "--out", "x"], 1,
+     "unknown method 'rk5' (did you mean 'rk4'?)"),
+    (["check", HEATER, "--method", "rk4", "--dt", "0.1", "--target", "cortex-m4"], 1,
+     "unknown target 'cortex-m4'; did you mean 'cortex-m4f'?"),
+    (["emit", HEATER, "--method", "rk4", "--dtt", "0.1"], 2, "(Did you mean one of: '--dt'"),
+])
+def test_a_mistyped_name_gets_a_suggestion(tmp_path, monkeypatch, args, code, fragment):
+    monkeypatch.chdir(tmp_path)
+    result = run(*args)
+    assert result.exit_code == code and fragment in result.output, result.output
+
+
+def test_a_mistyped_symbol_in_an_expression_gets_a_suggestion(write_model, tmp_path):
+    model = write_model('name = "m"\n[states]\nT = { initial = 0.0, rate = "(T_amb - T)/tau" }\n'
+                        '[parameters]\nT_amb = 20.0\ntau = 5.0\n[outputs]\nhot = "T - Tamb"\n')
+    result = run("emit", model, "--method", "rk4", "--dt", "0.1", "--out", tmp_path / "o")
+    assert result.exit_code == 1
+    assert "outputs.hot" in result.output and "unknown symbol 'Tamb' (did you mean 'T_amb'?)" \
+        in result.output
+
+
+def test_emit_and_replay_json(tmp_path):
+    result = run("emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", tmp_path, "--json")
+    assert result.exit_code == 0, result.output
+    assert json.loads(result.stdout) == {"written": [str(tmp_path / "heater.h"),
+                                                     str(tmp_path / "heater.c")]}
+    out = tmp_path / "r.csv"
+    result = run("replay", HEATER, "--method", "rk4", "--dt", "0.1", "--steps", "5", "--out", out,
+                 "--json")
+    assert result.exit_code == 0, result.output
+    assert json.loads(result.stdout) == {"out": str(out), "rows": 6, "ticks": 5, "completed": 5,
+                                         "status": "OK", "finished": True}
+
+
+@pytest.mark.parametrize("terminal, quiet, shown", [(True, False, True), (True, True, False),
+                                                    (False, False, False)])
+def test_progress_only_on_a_terminal_and_never_with_quiet(monkeypatch, tmp_path, terminal, quiet,
+                                                          shown):
+    import codegen.cli
+
+    monkeypatch.setattr(codegen.cli, "stderr_is_terminal", lambda: terminal)
+    args = ["emit", HEATER, "--method", "rk4", "--dt", "0.1", "--out", tmp_path]
+    result = run(*args, *(["--quiet"] if quiet else []))
+    assert result.exit_code == 0, result.output
+    assert ("... generate heater (1 state) with rk4" in result.stderr) == shown
+    assert result.stdout.splitlines() == [str(tmp_path / "heater.h"), str(tmp_path / "heater.c")]
+
+
+@pytest.mark.parametrize("words, cword, expected", [
+    ("tickwright rep", 1, ["replay", "report"]),
+    ("tickwright check m.toml --method rk", 4, ["rk4", "rk4-38"]),
+    ("tickwright check m.toml --target cortex-m", 4, ["cortex-m3", "cortex-m4f", "cortex-m7"]),
+])
+def test_shell_completion_of_commands_methods_and_targets(words, cword, expected):
+    env = {"_TICKWRIGHT_COMPLETE": "bash_complete", "COMP_WORDS": words,
+           "COMP_CWORD": str(cword)}
+    result = CliRunner().invoke(main, [], prog_name="tickwright", env=env)
+    assert result.exit_code == 0
+    assert result.output.splitlines() == [f"plain,{e}" for e in expected]
+
+
+def test_the_readme_s_completion_line_gives_a_bash_script():
+    result = CliRunner().invoke(main, [], prog_name="tickwright",
+                                env={"_TICKWRIGHT_COMPLETE": "bash_source"})
+    assert result.exit_code == 0 and "_tickwright_completion()" in result.output
+    assert 'eval "$(_TICKWRIGHT_COMPLETE=bash_source tickwright)"' in \
+        (ROOT / "README.md").read_text()
 
 
 def test_the_demo_s_default_folder_is_ignored_by_git():

@@ -10,15 +10,15 @@ from __future__ import annotations
 
 from ..discretize import ImplicitStep, StepProgram
 from ..errors import EmitError
-from .common import (GENERATED_MARKER, MISRA_DEVIATIONS, STATUS_CODES, CSource, comment_text,
-                     error_scale, finish, render, render_body)
+from .common import (GENERATED_MARKER, MISRA_DEVIATIONS, STATUS_CODES, CSource, FileDifference,
+                     comment_text, error_scale, file_note, finish, render, render_body)
 from .explicit import explicit_context
 from .implicit import implicit_context
 from .printer import DOUBLE, FLOAT, PRECISIONS, Printer
 
 __all__ = ["DOUBLE", "FLOAT", "GENERATED_MARKER", "MISRA_DEVIATIONS", "PRECISIONS",
-           "STATUS_CODES", "CSource", "Printer", "comment_text", "emit", "error_scale", "render",
-           "render_body"]
+           "STATUS_CODES", "CSource", "FileDifference", "Printer", "comment_text", "emit",
+           "error_scale", "file_note", "render", "render_body"]
 
 
 def emit(step: StepProgram | ImplicitStep, precision: str = FLOAT) -> CSource:

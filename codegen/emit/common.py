@@ -85,6 +85,60 @@ class CSource:
             written.append(path)
         return written
 
+    def differences(self, out_dir: str | Path) -> list[FileDifference]:
+        """Compare the files with the ones in out_dir, writing nothing (emit --check): one
+        FileDifference per file that is missing or whose text differs, in the order of files.
+
+        Line ends are compared as text (a checkout with CR LF line ends agrees).
+        """
+        found = []
+        for name, text in self.files:
+            path = Path(out_dir) / name
+            try:
+                on_disk = path.read_text(encoding="utf-8", errors="replace")
+            except (FileNotFoundError, IsADirectoryError, NotADirectoryError):
+                found.append(FileDifference(path, 0, "", ""))
+                continue
+            want, have = text.splitlines(), on_disk.splitlines()
+            if want == have:
+                continue
+            line = next((i for i, (a, b) in enumerate(zip(want, have)) if a != b),
+                        min(len(want), len(have)))
+            found.append(FileDifference(path, line + 1, _line(want, line), _line(have, line)))
+        return found
+
+
+# Characters of a differing line that emit --check shows: enough to recognise it, short enough
+# for one line of a CI log.
+SHOWN_LINE = 60
+
+
+def _line(lines: list[str], index: int) -> str:
+    """The line at index, cut to SHOWN_LINE characters; '(end of file)' past the last one."""
+    if index >= len(lines):
+        return "(end of file)"
+    text = lines[index].strip()
+    return text if len(text) <= SHOWN_LINE else text[: SHOWN_LINE - 3] + "..."
+
+
+@dataclass(frozen=True)
+class FileDifference:
+    """A generated file that does not match the file on disk: line is the first line that
+    differs (1-based; 0 when the file is missing), expected and found that line on each side."""
+
+    path: Path
+    line: int
+    expected: str
+    found: str
+
+    @property
+    def summary(self) -> str:
+        """One line for a CI log: which file, and its first differing line."""
+        if self.line == 0:
+            return f"{self.path}: missing (the model generates it)"
+        return (f"{self.path}: line {self.line} differs: the model generates "
+                f"'{self.expected}', the file has '{self.found}'")
+
 
 def comment_text(text: str) -> str:
     """Make user text safe inside a C block comment: printable ASCII, no comment or trigraph."""
@@ -175,10 +229,10 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
     method = step.method
     preamble = [
         f"{GENERATED_MARKER} {__version__} from model '{model.name}'.",
-        _file_note("Model", model.source, model.digest) or "Model built in Python (no model file).",
+        file_note("Model", model.source, model.digest) or "Model built in Python (no model file).",
         f"Method: {comment_text(method.name)} ({method.id}), {kind_note}.",
     ]
-    method_file = _file_note("Method", getattr(method, "origin", "") or method.id,
+    method_file = file_note("Method", getattr(method, "origin", "") or method.id,
                              getattr(method, "digest", ""))
     if method_file:
         preamble.append(method_file)
@@ -245,7 +299,7 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
         functions=[], names=names, printer=printer)
 
 
-def _file_note(what: str, path: str, digest: str) -> str:
+def file_note(what: str, path: str, digest: str) -> str:
     """'<what> file <name>, SHA-256 <hex>.' for a file read from disk, '' without a digest.
 
     The file name and the hash of its bytes identify the input; its folder would make the same

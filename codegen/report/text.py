@@ -39,10 +39,20 @@ def verdict(passed: bool) -> str:
     return "ok" if passed else "FAIL"
 
 
-def row(label: str, passed: bool | None, text: str) -> str:
+class Row(str):
+    """A check line as text, remembering its parts (label, verdict and figures) for a table."""
+
+    label: str
+    verdict: str
+    figures: str
+
+
+def row(label: str, passed: bool | None, text: str) -> Row:
     """One check line: label, verdict (blank for a continuation line) and the figures."""
     mark = "" if passed is None else verdict(passed)
-    return f"{label:<{LABEL_WIDTH}} {mark:<{VERDICT_WIDTH}} {text}"
+    line = Row(f"{label:<{LABEL_WIDTH}} {mark:<{VERDICT_WIDTH}} {text}")
+    line.label, line.verdict, line.figures = label, mark, text
+    return line
 
 
 # ---- check ----------------------------------------------------------------------------------------
@@ -156,6 +166,15 @@ def check_lines(outcome) -> list[str]:
     note = f"; {outcome.method_note}" if outcome.method_note else ""
     lines = [f"{r.model}: {outcome.method_name} ({r.method}{note}), dt = {r.dt:g} s, {r.substeps} "
              "substep(s)"]
+    lines += ["  " + line for line in check_body(outcome)]
+    lines.append("verdict: " + ("PASS" if outcome.passed else "FAIL"))
+    return lines
+
+
+def check_body(outcome) -> list[str]:
+    """The lines of check_lines between the title and the verdict: a Row per check, then a line
+    per picture."""
+    r = outcome.report
     body = [row("strict compile", True, r.strict_compile)]
     if r.stability is not None:
         body.append(stability_line(r.stability))
@@ -170,9 +189,7 @@ def check_lines(outcome) -> list[str]:
     body += [f"picture: {p}" for p in outcome.pictures]
     for t in outcome.targets:
         body += target_lines(t)
-    lines += ["  " + line for line in body]
-    lines.append("verdict: " + ("PASS" if outcome.passed else "FAIL"))
-    return lines
+    return body
 
 
 # ---- replay ---------------------------------------------------------------------------------------
