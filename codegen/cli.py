@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import functools
+import math
+import sys
 from pathlib import Path
 
 import click
@@ -10,6 +12,48 @@ import click
 from . import __version__
 from .errors import BuildError, CheckError, MethodError, TickwrightError
 
+
+
+class FiniteFloatRange(click.FloatRange):
+    """click's FloatRange that also refuses inf and nan (which FloatRange lets through)."""
+
+    name = "finite float range"
+
+    def convert(self, value, param, ctx):
+        number = super().convert(value, param, ctx)
+        if not math.isfinite(number):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return number
+
+
+class OneLineGroup(click.Group):
+    """The command group whose usage mistakes are one line on stderr, exit status 2 (click's).
+
+    click prints the usage, a hint and the error on four lines; every other diagnostic of the
+    tool is one line, so a usage mistake says the same in one: the error and where to look.
+    """
+
+    def main(self, args=None, prog_name=None, complete_var=None, standalone_mode=True, **extra):
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode, **extra)
+        try:
+            code = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except click.UsageError as exc:
+            command = exc.ctx.command_path if exc.ctx is not None else "tickwright"
+            click.echo(f"tickwright: error: {exc.format_message()} (see '{command} --help')",
+                       err=True)
+            sys.exit(exc.exit_code)
+        except click.ClickException as exc:
+            click.echo(f"tickwright: error: {exc.format_message()}", err=True)
+            sys.exit(exc.exit_code)
+        except click.Abort:
+            click.echo("tickwright: aborted", err=True)
+            sys.exit(1)
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+# A tick period, a tolerance or a margin: a positive finite number of seconds or a fraction.
+POSITIVE = FiniteFloatRange(min=0, min_open=True)
 PRECISION_CHOICE = click.Choice(["float", "double"])
 # Ticks of a replay given neither --inputs nor --steps: a short look at the model's start.
 DEFAULT_REPLAY_TICKS = 100
@@ -74,7 +118,7 @@ def step_options(fn):
                       help="Working precision of the generated C.")(fn)
     fn = click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
                       help="Method steps per tick (h = dt / substeps).")(fn)
-    fn = click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+    fn = click.option("--dt", type=POSITIVE, required=True,
                       help="Tick period in seconds.")(fn)
     return method_options(fn)
 
@@ -86,7 +130,7 @@ def implicit_options(fn):
                       help="Linear solves of implicit methods: straight-line sparse elimination, "
                            "a looped dense LU (lower-upper) factorization with partial pivoting, "
                            "or chosen by cost.")(fn)
-    fn = click.option("--newton-tol", "newton_tol", type=click.FloatRange(min=0, max=1,
+    fn = click.option("--newton-tol", "newton_tol", type=FiniteFloatRange(min=0, max=1,
                       min_open=True, max_open=True), default=None,
                       help="Newton tolerance of implicit methods: the largest |correction| / "
                            "state scale (default 2^-16 in float, 2^-40 in double).")(fn)
@@ -187,7 +231,7 @@ def with_values(model, settings: dict):
                                            for p in model.parameters))
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.group(cls=OneLineGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="tickwright")
 @click.option("--verbose", is_flag=True,
               help="When a C compiler fails, also print its command and its whole output "
@@ -218,8 +262,12 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     """Write the C files for MODEL: <name>.h and <name>.c."""
     from .pipeline import generate
 
+    from .errors import EmitError
+    from .output import check_writable
+
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    check_writable(out_dir, EmitError, "choose a writable folder for --out")
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
@@ -231,7 +279,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @main.command()
 @click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
 @method_options
-@click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+@click.option("--dt", type=POSITIVE, required=True,
               help="Tick period in seconds.")
 @click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
               help="Method steps per tick.")
@@ -247,7 +295,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @set_option
 @force_run_option
 @click.option("--no-order", is_flag=True, help="Skip the order study.")
-@click.option("--tolerance", type=click.FloatRange(min=0, min_open=True), default=1e-2,
+@click.option("--tolerance", type=POSITIVE, default=1e-2,
               show_default=True,
               help="Accuracy target against solve_ivp, as a fraction of each state's scale "
                    "(the largest magnitude of its range, else of its run).")
@@ -286,8 +334,12 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     from .targets import check_on_targets, load_target
     from .verify import COLUMN, SWEEP, check as run_check
 
+    from .output import check_writable
+
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    if plot_dir:
+        check_writable(plot_dir, CheckError, "choose a writable folder for --plot")
     if (inputs_path or set_pairs) and (error_estimate or target_names):
         raise click.UsageError("--inputs and --set apply to the cross-check and the accuracy "
                                "check; run --error-estimate and --target without them")
@@ -383,10 +435,12 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
     """
     from .inputs import held_defaults, parameter_settings, parameter_table, read_log
     from .report.text import replay_done_line, replay_stop_message
+    from .output import check_writable
     from .run import replay as run_replay
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    check_writable(out_path, CheckError, "choose a writable path for --out")
     settings = parameter_settings(model, set_pairs)
     columns = {}
     if inputs_path:
@@ -428,16 +482,16 @@ def methods(tableau_file, as_json):
 @main.command()
 @click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
 @method_options
-@click.option("--dt", type=click.FloatRange(min=0, min_open=True),
+@click.option("--dt", type=POSITIVE,
               help="A tick period in seconds to check for the chosen --method.")
-@click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+@click.option("--tolerance", type=FiniteFloatRange(min=0, max=1, min_open=True, max_open=True),
               default=1e-3, show_default=True,
               help="Accuracy target: largest error as a fraction of each state's full scale "
                    "(max |range bound|); half of it goes to truncation, half to round-off. "
                    "Pass the same value to check --tolerance.")
-@click.option("--margin", type=click.FloatRange(min=0, max=1, min_open=True), default=0.8,
+@click.option("--margin", type=FiniteFloatRange(min=0, max=1, min_open=True), default=0.8,
               show_default=True, help="Use at most this fraction of the stability limit.")
-@click.option("--horizon", type=click.FloatRange(min=0, min_open=True),
+@click.option("--horizon", type=POSITIVE,
               help="Seconds the error estimates look ahead: the long run goes toward it (at "
                    "most 2000 ticks, the output marks a run stopped there) and undamped modes "
                    "are followed over it (default: two of the slowest time constants).")
@@ -458,10 +512,14 @@ def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, 
     from .report.json import json_text
     from .report.text import advice_lines, advice_warnings
 
+    from .output import check_writable
+
     model = load(model_path)
     method = resolve_method(method_id, tableau_file) if (method_id or tableau_file) else None
     if dt is not None and method is None:
         raise click.UsageError("--dt needs --method NAME (or --tableau FILE) to check it against")
+    if plot_dir:
+        check_writable(plot_dir, CheckError, "choose a writable folder for --plot")
     pool = candidates()
     advice = run_advice(model, method, dt, tolerance, margin, horizon, methods=pool, progress=say)
     if plot_dir:

@@ -366,4 +366,4 @@ def _evaluate(expr, env):
     if type(expr) in _FUNCTIONS:
         return _FUNCTIONS[type(expr)](*args)
     symbols = sorted(expr.free_symbols, key=lambda s: s.name)
-    return sp.lambdify(symbols, expr, modules="numpy")(*[env[s] for s in symbols])
+    return sp.lambdify(symbols, expr, modules="numpy", dummify=True)(*[env[s] for s in symbols])

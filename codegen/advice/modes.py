@@ -83,8 +83,8 @@ def _linearization(model: Model):
     ju = f.jacobian(sp.Matrix(model.u)) if model.inputs else sp.zeros(model.nx, 0)
     psyms = [p.symbol for p in model.parameters]
     args = [model.t, list(model.x), list(model.u), psyms]
-    fns = [sp.lambdify(args, m, modules="numpy") for m in (f, jx)]
-    fu = sp.lambdify(args, ju, modules="numpy") if model.inputs else None
+    fns = [sp.lambdify(args, m, modules="numpy", dummify=True) for m in (f, jx)]
+    fu = sp.lambdify(args, ju, modules="numpy", dummify=True) if model.inputs else None
     names = [p.name for p in model.parameters]
     nx, nu = model.nx, len(model.inputs)
 

@@ -46,7 +46,8 @@ def numeric(model: Model, exprs, parameters: dict[str, float] | None = None, sha
 def _vector(model: Model, exprs, key, shape):
     psyms = [p.symbol for p in model.parameters]
     target = exprs if isinstance(exprs, sp.MatrixBase) else list(exprs)
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], target, modules="numpy")
+    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], target, modules="numpy",
+                     dummify=True)
     values = dict(key)
     pvals = [values[p.name] for p in model.parameters]
 
@@ -65,7 +66,7 @@ def _scalar(model: Model, exprs, key, shape):
     subs = {p.symbol: sp.Rational(repr(float(values[p.name]))) for p in model.parameters}
     flat = list(exprs)
     fn = sp.lambdify([model.t, *model.x, *model.u], [sp.sympify(e).xreplace(subs) for e in flat],
-                     modules="math")
+                     modules="math", dummify=True)
     out_shape = exprs.shape if isinstance(exprs, sp.MatrixBase) else (len(flat),)
     out_shape = out_shape if shape is None else shape
     nan = np.full(len(flat), np.nan).reshape(out_shape)
