@@ -155,6 +155,31 @@ def set_option(fn):
                              "of --inputs named like one sets it tick by tick.")(fn)
 
 
+def log_options(fn):
+    """--resample and --strict-ranges for the commands that read an input log (check, replay)."""
+    fn = click.option("--strict-ranges", is_flag=True,
+                      help="Refuse a log whose inputs or parameters leave their declared range "
+                           "(by default a warning names the first such line).")(fn)
+    return click.option("--resample", is_flag=True,
+                        help="Hold each row of --inputs until the next onto the --dt grid when "
+                             "the log's times are not one tick apart (by default such a log is "
+                             "refused).")(fn)
+
+
+def read_inputs(path: Path, model, ticks, dt: float, resample: bool, strict_ranges: bool):
+    """The log of --inputs on the tick grid; inputs outside their range warn (or fail)."""
+    from .inputs import range_problem, read_log
+
+    log = read_log(path, model, ticks, dt=dt, resample=resample)
+    problem = range_problem(log, model, path)
+    if problem and strict_ranges:
+        raise CheckError(f"{problem}; fix the log or the model's ranges (--strict-ranges)")
+    if problem:
+        click.echo(f"tickwright: warning: {problem}; the checks of the model hold only inside "
+                   "its ranges (--strict-ranges makes this an error)", err=True)
+    return log
+
+
 def gate_before_run(model, method, dt, substeps, model_path, force_run: bool,
                     warn_only: bool = False, with_limit: bool = False):
     """The stability gate before anything is built: a warning (emit), else one error line and
@@ -292,6 +317,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
               help="Run the cross-check and the accuracy check on this log instead of the input "
                    "sweep: CSV with header t,<inputs>[,<tunable parameters>], one row per tick "
                    "(as for replay).")
+@log_options
 @set_option
 @force_run_option
 @click.option("--no-order", is_flag=True, help="Skip the order study.")
@@ -316,8 +342,9 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @units_option
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, inputs_path,
-          set_pairs, force_run, no_order, tolerance, as_json, error_estimate, plot_dir,
-          plot_format, target_names, targets_dir, newton_iterations, newton_tol, linear_solve):
+          resample, strict_ranges, set_pairs, force_run, no_order, tolerance, as_json,
+          error_estimate, plot_dir, plot_format, target_names, targets_dir, newton_iterations,
+          newton_tol, linear_solve):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     With --inputs, the cross-check and the accuracy check run on a recorded log of inputs. With
@@ -326,7 +353,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     Stops at once when dt is beyond the stability limit (unless --force-run).
     Exit status 1 when any check fails.
     """
-    from .inputs import parameter_settings, parameter_table, read_log
+    from .inputs import parameter_settings, parameter_table
     from .methods import tolerance_note
     from .report import CheckOutcome
     from .report.json import check_data, json_text
@@ -346,9 +373,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     settings = parameter_settings(model, set_pairs)
     inputs, columns, scenario = None, {}, SWEEP
     if inputs_path:
-        log = read_log(inputs_path, model, ticks)
-        if not len(log.inputs):
-            raise CheckError(f"{inputs_path}: no rows after the header; write one row per tick")
+        log = read_inputs(inputs_path, model, ticks, dt, resample, strict_ranges)
         inputs, columns, scenario = log.inputs, log.parameters, inputs_path.name
     ticks = len(inputs) if inputs is not None else ticks or DEFAULT_CHECK_TICKS
     parameters = parameter_table(model, ticks, settings, columns, str(inputs_path))
@@ -422,29 +447,31 @@ def targets_command(targets_dir, as_json):
                    f"{DEFAULT_REPLAY_TICKS}).")
 @click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
+@log_options
 @set_option
 @force_run_option
 @implicit_options
 @units_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path, set_pairs, force_run, newton_iterations, newton_tol, linear_solve):
+           out_path, resample, strict_ranges, set_pairs, force_run, newton_iterations, newton_tol,
+           linear_solve):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV.
 
     Stops at once when dt is beyond the stability limit (unless --force-run).
     """
-    from .inputs import held_defaults, parameter_settings, parameter_table, read_log
+    from .inputs import held_defaults, parameter_settings, parameter_table
     from .report.text import replay_done_line, replay_stop_message
     from .output import check_writable
     from .run import replay as run_replay
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
-    check_writable(out_path, CheckError, "choose a writable path for --out")
+    check_writable(out_path, CheckError, "choose a writable path for --out", is_file=True)
     settings = parameter_settings(model, set_pairs)
     columns = {}
     if inputs_path:
-        log = read_log(inputs_path, model, steps)
+        log = read_inputs(inputs_path, model, steps, dt, resample, strict_ranges)
         inputs, columns = log.inputs, log.parameters
     else:
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)

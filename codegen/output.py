@@ -113,15 +113,18 @@ def write_files(files, error: type[TickwrightError], fix: str) -> list[Path]:
     return [path for path, _ in files]
 
 
-def check_writable(path: str | Path, error: type[TickwrightError], fix: str) -> None:
+def check_writable(path: str | Path, error: type[TickwrightError], fix: str,
+                   is_file: bool = False) -> None:
     """Refuse early (before a long run) a path whose nearest existing folder cannot be written.
 
-    path: the file or folder to be written. A read-only file system, a folder without write
-    permission or a file in the way is one line; the final write can still fail (a full disk),
-    and then rolls back.
+    path: the folder to be written into, or with is_file the file to be written. A read-only
+    file system, a folder without write permission or a file in the way is one line; the final
+    write can still fail (a full disk), and then rolls back.
     """
     path = Path(path)
-    folder = path
+    if is_file and path.is_dir():
+        raise error(f"{path}: is a folder; {fix}")
+    folder = path.parent if is_file else path
     while not folder.exists() and folder.parent != folder:
         folder = folder.parent
     if folder.exists() and not folder.is_dir():

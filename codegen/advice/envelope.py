@@ -103,7 +103,8 @@ def _halton(d: int, n: int) -> np.ndarray:
 def _jacobian_with_parameters(model: Model):
     J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
     psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy", dummify=True)
+    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy",
+                     dummify=True)
     names = [p.name for p in model.parameters]
 
     def jac(t, x, u, parameters: dict):

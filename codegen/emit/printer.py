@@ -55,7 +55,8 @@ def rounded(value: sp.Expr, precision: str) -> float:
 
 # The smallest positive normal number of each precision: a tick or a constant below it has lost
 # its precision (a subnormal) or rounds to zero.
-SMALLEST_NORMAL = {FLOAT: float(np.finfo(np.float32).tiny), DOUBLE: float(np.finfo(np.float64).tiny)}
+SMALLEST_NORMAL = {FLOAT: float(np.finfo(np.float32).tiny),
+                   DOUBLE: float(np.finfo(np.float64).tiny)}
 # The largest finite number of each precision.
 LARGEST = {FLOAT: float(np.finfo(np.float32).max), DOUBLE: float(np.finfo(np.float64).max)}
 
