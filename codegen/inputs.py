@@ -22,6 +22,9 @@ from .model import Model
 # How far a row's time may be from its tick, as a fraction of dt: logs print times rounded
 # (3e-05, 6e-05, ...), and a row a whole tick off is a log at another rate.
 TIME_TOLERANCE = 0.01
+# Ticks a resampled log may have: ten million rows of a few inputs are some hundred MB of
+# numbers, more than any bench log needs at its own tick.
+MAX_RESAMPLED_TICKS = 10_000_000
 
 
 @dataclass(frozen=True)
@@ -111,6 +114,10 @@ def read_log(path: str | Path, model: Model, ticks: int | None = None, dt: float
         rows_at = _ticks_of(times, float(dt), resample)
         if rows_at is None:
             _refuse_spacing(path, model, times, lines, float(dt))
+        if not len(rows_at):
+            raise CheckError(f"{path}: resampling {times[-1] - times[0]:g} s of log at --dt "
+                             f"{float(dt):g} s would make more than {MAX_RESAMPLED_TICKS} ticks; "
+                             "use a longer --dt or a shorter log")
         data, lines = data[rows_at], lines[rows_at]
     data = data if ticks is None else data[:ticks]
     lines = lines if ticks is None else lines[:ticks]
@@ -128,6 +135,8 @@ def _ticks_of(times: np.ndarray, dt: float, resample: bool) -> np.ndarray | None
         return np.arange(len(times))
     if not resample:
         return None
+    if not offsets[-1] < MAX_RESAMPLED_TICKS:
+        return np.zeros(0, dtype=int)
     count = int(np.floor(offsets[-1] + TIME_TOLERANCE)) + 1
     return np.searchsorted(offsets, np.arange(count) + TIME_TOLERANCE, side="right") - 1
 

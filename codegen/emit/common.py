@@ -186,7 +186,7 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
     preamble = [
         f"{GENERATED_MARKER} {__version__} from model '{model.name}'.",
         _file_note("Model", model.source, model.digest) or "Model built in Python (no model file).",
-        f"Method: {comment_text(method.name)} ({method.id}), {kind_note}.",
+        f"Method: {comment_text(method.name)} ({comment_text(method.id)}), {kind_note}.",
     ]
     method_file = _file_note("Method", getattr(method, "origin", "") or method.id,
                              getattr(method, "digest", ""))

@@ -91,6 +91,26 @@ def parse_expression(text, symbols: dict[str, sp.Symbol], where: str, item: str)
     return expr
 
 
+def power_problem(base: sp.Expr, exponent: sp.Expr) -> str:
+    """What is wrong with base**exponent of two numbers, or '' (also for anything symbolic).
+
+    A power of numbers beyond the double range is refused before it is computed:
+    2**2**2**2**2**2 would take sympy minutes and end beyond any float; 0 to a negative power is a
+    division by zero.
+    """
+    if not (base.is_Number and exponent.is_Number):
+        return ""
+    if base == 0:
+        return "division by zero (zero to a negative power)" if exponent < 0 else ""
+    if abs(base) == 1 or exponent == 0:
+        return ""
+    size = _log2_abs(exponent) + math.log2(max(abs(_log2_abs(base)), 1e-300))
+    if size > math.log2(DOUBLE_MAX_BITS):
+        return (f"the power {_cut(str(base))}**{_cut(str(exponent))} is beyond the range of "
+                "double; rescale the model")
+    return ""
+
+
 def _log2_abs(number: sp.Number) -> float:
     """log2 |number| of a non-zero sympy number, without overflow for integers of any size."""
     if number.is_Rational:
@@ -244,15 +264,10 @@ class _Translator:
         self.fail(f"operator '{type(node.op).__name__}' is not allowed; use + - * / **")
 
     def power(self, base, exponent):
-        """base**exponent, refusing a power of numbers beyond the double range before computing it
-        (2**2**2**2**2**2 would take sympy minutes and end beyond any float)."""
-        if base.is_Number and exponent.is_Number and base != 0 and abs(base) != 1:
-            size = _log2_abs(exponent) + math.log2(max(abs(_log2_abs(base)), 1e-300))
-            if size > math.log2(DOUBLE_MAX_BITS):
-                self.fail(f"the power {_cut(str(base))}**{_cut(str(exponent))} is beyond "
-                          "the range of double; rescale the model")
-        if base == 0 and exponent.is_Number and exponent < 0:
-            self.fail("division by zero (zero to a negative power)")
+        """base**exponent, refused (power_problem) before sympy computes it."""
+        problem = power_problem(base, exponent)
+        if problem:
+            self.fail(problem)
         return base ** exponent
 
     def visit_UnaryOp(self, node):
@@ -271,7 +286,10 @@ class _Translator:
             if type(op) not in _COMPARE:
                 self.fail("only < <= > >= comparisons are allowed in conditions")
             right = self.value(comparator)
-            parts.append(_COMPARE[type(op)](left, right))
+            try:
+                parts.append(_COMPARE[type(op)](left, right))
+            except TypeError:  # sympy refuses to order a non-real value (log(0), sqrt(-1))
+                self.fail("compares a value that is not a finite real number")
             left = right
         return sp.And(*parts) if len(parts) > 1 else parts[0]
 
@@ -298,7 +316,10 @@ class _Translator:
             self.fail(f"'{name}' takes {want} argument(s), got {n}")
         if name == "Piecewise":
             return self.piecewise(node.args)
-        return FUNCTIONS[name](*[self.value(a) for a in node.args])
+        result = FUNCTIONS[name](*[self.value(a) for a in node.args])
+        if result.has(sp.zoo, sp.nan, sp.oo, -sp.oo):
+            self.fail(f"'{name}' of these arguments is infinite or undefined")
+        return result
 
     def piecewise(self, args):
         pieces = []
