@@ -255,6 +255,12 @@ def base_context(step: StepProgram, precision: str, kind_note: str) -> dict:
         functions=[], names=names, printer=printer)
 
 
+def _safe_comments(entry: dict) -> dict:
+    """entry with its 'doc', 'comment' and 'reason' texts passed through comment_text."""
+    return {key: comment_text(value) if key in ("doc", "comment", "reason") and
+            isinstance(value, str) else value for key, value in entry.items()}
+
+
 def _file_note(what: str, path: str, digest: str) -> str:
     """'<what> file <name>, SHA-256 <hex>.' for a file read from disk, '' without a digest.
 
@@ -430,6 +436,11 @@ def finish(step: StepProgram, precision: str, ctx: dict) -> CSource:
         unique.setdefault(c["name"], c)
     ctx = dict(ctx, constants=list(unique.values()),
                constant_width=max((len(name) for name in unique), default=0))
+    # Every comment text that can quote user text (a method's name in a function's comment)
+    # goes through comment_text, so no '*/', line splice or trigraph reaches the C.
+    for key in ("functions", "prototypes", "defines", "fields", "outputs", "status",
+                "constants", "asserts"):
+        ctx[key] = [_safe_comments(entry) for entry in ctx[key]]
     header = render("header.h.j2", **ctx)
     source = render("source.c.j2", **ctx)
     for name, text in ((ctx["header"], header), (f"{step.model.name}.c", source)):

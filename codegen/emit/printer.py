@@ -35,9 +35,24 @@ _MATH = {  # sympy function -> C99 math.h name (double); float appends 'f'
 }
 
 
+# Magnitudes that round to infinity and to zero in every precision (double's largest finite
+# number is about 1.8e308, its smallest subnormal about 4.9e-324).
+OUTSIDE_DOUBLE = sp.Float("1e310")
+BELOW_DOUBLE = sp.Float("1e-330")
+
+
 def rounded(value: sp.Expr, precision: str) -> float:
-    """The exact value correctly rounded to the target floating-point format."""
-    exact = Fraction(str(sp.Float(sp.N(value, EXACT_DIGITS), EXACT_DIGITS)))
+    """The exact value correctly rounded to the target floating-point format.
+
+    Values far beyond the double range round to +-inf, far below it to +-0, before any exact
+    arithmetic: exp(1e39) as a fraction would have 10^38 digits.
+    """
+    approx = sp.Float(sp.N(value, EXACT_DIGITS), EXACT_DIGITS)
+    if abs(approx) > OUTSIDE_DOUBLE:
+        return math.copysign(math.inf, float(sp.sign(approx)))
+    if abs(approx) < BELOW_DOUBLE:
+        return math.copysign(0.0, float(sp.sign(approx)) or 1.0)
+    exact = Fraction(str(approx))
     try:
         as_double = float(exact)
     except OverflowError:
@@ -63,15 +78,16 @@ LARGEST = {FLOAT: float(np.finfo(np.float32).max), DOUBLE: float(np.finfo(np.flo
 
 def _short(value, limit: int = 40) -> str:
     text = str(value)
-    return text if len(text) <= limit else f"{float(sp.N(value, 17)):.6g}"
+    return text if len(text) <= limit else str(sp.N(value, 4))[:limit]
 
 
 def literal(value, precision: str) -> str:
     """A C floating literal for an exact value, with enough digits to round-trip."""
     v = rounded(sp.sympify(value), precision)
     if not np.isfinite(v):
+        fix = "use --precision double" if precision == FLOAT else "use a shorter --dt"
         raise EmitError(f"the constant {_short(value)} is beyond the range of {precision}; "
-                        "rescale the model or use --precision double")
+                        f"rescale the model or {fix}")
     if precision == FLOAT:
         text = f"{np.float32(v):.{ROUND_TRIP_DIGITS[FLOAT]}g}"
         if float(np.float32(text)) != v:  # pragma: no cover - guarded by the round-trip test
