@@ -1,7 +1,7 @@
 #!/bin/sh
 # Install what the target checks need (Debian/Ubuntu): host gcc, Arm and RISC-V bare-metal gcc with
-# picolibc, the QEMU system emulators, cppcheck and valgrind: the package set of docs/toolchains.md,
-# without recommended packages. Idempotent: installs only what is missing, and exits non-zero if
+# picolibc, the QEMU system emulators, cppcheck, valgrind and clang (its static analyzer runs on
+# the generated code): the package set of docs/toolchains.md, without recommended packages. Idempotent: installs only what is missing, and exits non-zero if
 # anything is still missing afterwards.
 set -u
 
@@ -16,6 +16,7 @@ riscv64-unknown-elf-gcc|gcc-riscv64-unknown-elf
 qemu-system-riscv32|qemu-system-misc
 cppcheck|cppcheck
 valgrind|valgrind
+clang|clang
 timeout|coreutils"
 
 present() {
