@@ -118,8 +118,8 @@ def check_writable(path: str | Path, error: type[TickwrightError], fix: str,
     """Refuse early (before a long run) a path whose nearest existing folder cannot be written.
 
     path: the folder to be written into, or with is_file the file to be written. A read-only
-    file system, a folder without write permission or a file in the way is one line; the final
-    write can still fail (a full disk), and then rolls back.
+    file system, an immutable folder, a folder without write permission or a file in the way is
+    one line; the final write can still fail (a full disk), and then rolls back.
     """
     path = Path(path)
     if is_file and path.is_dir():
@@ -131,6 +131,14 @@ def check_writable(path: str | Path, error: type[TickwrightError], fix: str,
         raise error(f"{path}: {folder} is a file, not a folder; {fix}")
     if not os.access(folder, os.W_OK | os.X_OK):
         raise error(f"{path}: {folder} is not writable (read-only or no permission); {fix}")
+    # access() says yes to root even on an immutable folder or a file system that takes no new
+    # files: a probe file, removed at once, asks the file system itself.
+    try:
+        handle, name = tempfile.mkstemp(dir=folder, prefix=".tw-probe.", suffix=TEMPORARY_SUFFIX)
+    except OSError as exc:
+        raise error(f"{path}: cannot write in {folder}: {exc.strerror or exc}; {fix}") from None
+    os.close(handle)
+    os.unlink(name)
 
 
 def _keep(path: Path) -> Path:

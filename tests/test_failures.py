@@ -14,7 +14,6 @@ from __future__ import annotations
 import math
 import re
 import subprocess
-from pathlib import Path
 
 import numpy as np
 import pytest

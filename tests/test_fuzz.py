@@ -19,10 +19,8 @@ import functools
 import os
 import re
 import signal
-from pathlib import Path
 
 import numpy as np
-import pytest
 import sympy as sp
 from click.testing import CliRunner
 from hypothesis import HealthCheck, given, settings, strategies as st
@@ -32,14 +30,14 @@ from codegen.cli import main
 from codegen.emit import comment_text
 from codegen.errors import TickwrightError
 from codegen.inputs import read_log
-from codegen.methods import builtin, builtin_ids, load_method_file
+from codegen.methods import builtin, load_method_file
 from codegen.model import load_model, model_from_data, parse_expression
 from codegen.pipeline import generate
 
 from conftest import FUZZ_PROPERTY
 
-# Seconds one generated case may take before it counts as a hang (the slowest legitimate case,
-# a 5000-term sum through the whole emit path, takes a few seconds on the CI machine).
+# Seconds one generated case may take before it counts as a hang (the slowest cases, a command
+# line run or a 5000-term sum, take a few seconds on a busy machine).
 CASE_SECONDS = 60
 # Cases per layer: together at least 10,000 per CI run (the count), most of them in the
 # loader and expression layers, which cost about a millisecond each.
@@ -53,7 +51,7 @@ CASES = {layer: max(1, round(count * SCALE)) for layer, count in CASES.items()}
 # Text a hostile model puts into descriptions and units; it must never reach C outside a comment.
 MARKER = "INJECTED_MARKER"
 INJECTIONS = [f"*/ int {MARKER}; /*", f"end */ {MARKER}", f"??/\n{MARKER}", f"\\\n{MARKER}",
-              f"// {MARKER}", f"\x00{MARKER}\x1b[2J", f"#define {MARKER} 1", f"?" * 4 + MARKER,
+              f"// {MARKER}", f"\x00{MARKER}\x1b[2J", f"#define {MARKER} 1", "?" * 4 + MARKER,
               f"*\\\n/ {MARKER}", f"/\\\n* {MARKER}", f"\u202e{MARKER}", f"{MARKER}\r\n*/"]
 
 
@@ -146,7 +144,7 @@ def toml_text(doc: dict) -> str:
     return "\n".join(lines) + "\n"
 
 
-# ---- what a hostile model file is made of ----------------------------------------------------------
+# ---- what a hostile model file is made of --------------------------------------------------------
 
 GOOD_NAMES = ["x", "v", "T", "i_d", "omega2", "Va", "k", "R_th", "q"]
 BAD_NAMES = [
@@ -268,7 +266,7 @@ def model_documents(draw, hostile_text=True):
     return doc
 
 
-# ---- the layers -----------------------------------------------------------------------------------
+# ---- the layers ----------------------------------------------------------------------------------
 
 def test_fuzz_model_files(tmp_path, record_property):
     path = tmp_path / "fuzz.toml"

@@ -81,8 +81,8 @@ def _exact_node(node, text, where, item):
         args = [_exact_node(arg, text, where, item) for arg in node.args]
         if node.func.id == "sqrt" and len(args) != 1 or \
                 node.func.id == "Rational" and not (1 <= len(args) <= 2):
-            raise MethodError(located(where, item, f"{text}: {node.func.id}() takes "
-                                      f"{'one argument' if node.func.id == 'sqrt' else 'p or p, q'}"))
+            wanted = "one argument" if node.func.id == "sqrt" else "p or p, q"
+            raise MethodError(located(where, item, f"{text}: {node.func.id}() takes {wanted}"))
         if node.func.id == "Rational" and (not all(a.is_Rational for a in args)
                                            or len(args) == 2 and args[1] == 0):
             raise MethodError(located(where, item, f"{text}: Rational(p, q) takes whole "
