@@ -339,12 +339,22 @@ def test_fuzz_expressions(record_property):
 
 
 def test_fuzz_long_flat_sums_and_deep_nesting(record_property):
-    """Long flat sums and products translate; only deep nesting is refused, in one line."""
-    shapes = st.tuples(st.sampled_from(["sum", "product", "quotient", "nest", "minus"]),
-                       st.integers(1, 5000))
+    """Long flat sums and products translate; only deep nesting is refused, in one line; a model
+    of thousands of states loads and emits."""
+    shapes = ("states", "sum", "product", "quotient", "nest", "minus")
+    seen = []
 
-    def body(case):
-        shape, n = case
+    def body(n):
+        shape = shapes[len(seen) % len(shapes)]  # in turn: each shape gets its share
+        seen.append(shape)
+        if shape == "states":  # a chain x_i' = x_(i-1) - x_i of up to 3000 states
+            n = min(n, 3000)
+            doc = {"name": "chain", "states": {f"x{i}": {"initial": 1.0, "rate": f"x{i - 1} - x{i}"
+                                                         if i else "-x0"} for i in range(n)}}
+            csource = generate(model_from_data(doc, "chain.toml"), builtin("euler"), 0.01)
+            assert re.search(rf"#define CHAIN_NX +{n}U", csource.text("chain.h"))
+            assert f"tw_dx[{n - 1}] = " in csource.text("chain.c")  # the last state's rate
+            return
         text = {"sum": " + ".join(f"{i % 7}*x" if i % 2 else "sin(x)" for i in range(n)),
                 "product": "*".join(["x"] * n), "quotient": "x" + "/v" * n,
                 "nest": "sin(" * (n % 200) + "x" + ")" * (n % 200),
@@ -362,7 +372,8 @@ def test_fuzz_long_flat_sums_and_deep_nesting(record_property):
         elif shape == "product":
             assert expr == x ** n
 
-    run_cases(CASES["long"], shapes, body, record_property)
+    run_cases(CASES["long"], st.integers(1, 5000), body, record_property)
+    assert set(seen) == set(shapes)
 
 
 EXACT_ENTRIES = st.one_of(
