@@ -13,7 +13,6 @@ from . import __version__
 from .errors import BuildError, CheckError, MethodError, TickwrightError
 
 
-
 class FiniteFloatRange(click.FloatRange):
     """click's FloatRange that also refuses inf and nan (which FloatRange lets through)."""
 
@@ -48,6 +47,8 @@ class OneLineGroup(click.Group):
             sys.exit(exc.exit_code)
         except click.Abort:
             click.echo("tickwright: aborted", err=True)
+            sys.exit(1)
+        except BrokenPipeError:  # the reader of stdout went away (| head): as click does
             sys.exit(1)
         sys.exit(code if isinstance(code, int) else 0)
 
@@ -285,10 +286,9 @@ def main(verbose):
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
          error_estimate, newton_iterations, newton_tol, linear_solve):
     """Write the C files for MODEL: <name>.h and <name>.c."""
-    from .pipeline import generate
-
     from .errors import EmitError
     from .output import check_writable
+    from .pipeline import generate
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)

@@ -29,11 +29,11 @@ CACHED_FUNCTIONS = 64
 
 
 # Python compiles a sum of n terms n levels deep, so lambdify's compile of a spreadsheet-built
-# rate (thousands of terms) needs that much recursion: it runs with this limit on a thread with
-# this stack (the main thread's 8 MiB holds about 100,000 levels of Python's parser; the limit
-# stays far below what this stack holds).
+# rate (thousands of terms, at most model.expressions.MAX_OPERATORS) needs that much recursion:
+# it runs with this limit on a thread with this stack (reserved, not committed; measured: the
+# main thread's 8 MiB holds about 100,000 levels of Python's parser).
 DEEP_RECURSION_LIMIT = 250_000
-DEEP_STACK_BYTES = 512 * 2 ** 20
+DEEP_STACK_BYTES = 256 * 2 ** 20
 
 
 def lambdify(args, exprs, **options):
@@ -55,11 +55,16 @@ def lambdify(args, exprs, **options):
     sys.setrecursionlimit(max(old_limit, DEEP_RECURSION_LIMIT))
     try:
         worker = threading.Thread(target=compile_it, name="tickwright-lambdify")
-        worker.start()
+        try:
+            worker.start()
+        except RuntimeError:  # no room for such a stack here: compile on this thread
+            compile_it()
+            worker = None
     finally:
         threading.stack_size(old_size)
     try:
-        worker.join()
+        if worker is not None:
+            worker.join()
     finally:
         sys.setrecursionlimit(old_limit)
     if "error" in result:
