@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import difflib
 import functools
+import math
 import shlex
 import sys
 from pathlib import Path
@@ -13,6 +14,49 @@ import click
 from . import __version__
 from .errors import BuildError, CheckError, MethodError, TickwrightError
 
+
+class FiniteFloatRange(click.FloatRange):
+    """click's FloatRange that also refuses inf and nan (which FloatRange lets through)."""
+
+    name = "finite float range"
+
+    def convert(self, value, param, ctx):
+        number = super().convert(value, param, ctx)
+        if not math.isfinite(number):
+            self.fail(f"{value!r} is not a finite number", param, ctx)
+        return number
+
+
+class OneLineGroup(click.Group):
+    """The command group whose usage mistakes are one line on stderr, exit status 2 (click's).
+
+    click prints the usage, a hint and the error on four lines; every other diagnostic of the
+    tool is one line, so a usage mistake says the same in one: the error and where to look.
+    """
+
+    def main(self, args=None, prog_name=None, complete_var=None, standalone_mode=True, **extra):
+        if not standalone_mode:
+            return super().main(args, prog_name, complete_var, standalone_mode, **extra)
+        try:
+            code = super().main(args, prog_name, complete_var, standalone_mode=False, **extra)
+        except click.UsageError as exc:
+            command = exc.ctx.command_path if exc.ctx is not None else "tickwright"
+            click.echo(f"tickwright: error: {exc.format_message()} (see '{command} --help')",
+                       err=True)
+            sys.exit(exc.exit_code)
+        except click.ClickException as exc:
+            click.echo(f"tickwright: error: {exc.format_message()}", err=True)
+            sys.exit(exc.exit_code)
+        except click.Abort:
+            click.echo("tickwright: aborted", err=True)
+            sys.exit(1)
+        except BrokenPipeError:  # the reader of stdout went away (| head): as click does
+            sys.exit(1)
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+# A tick period, a tolerance or a margin: a positive finite number of seconds or a fraction.
+POSITIVE = FiniteFloatRange(min=0, min_open=True)
 PRECISION_CHOICE = click.Choice(["float", "double"])
 # Ticks of a replay given neither --inputs nor --steps: a short look at the model's start.
 DEFAULT_REPLAY_TICKS = 100
@@ -119,7 +163,7 @@ def step_options(fn):
                       help="Working precision of the generated C.")(fn)
     fn = click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
                       help="Method steps per tick (h = dt / substeps).")(fn)
-    fn = click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+    fn = click.option("--dt", type=POSITIVE, required=True,
                       help="Tick period in seconds.")(fn)
     return method_options(fn)
 
@@ -131,7 +175,7 @@ def implicit_options(fn):
                       help="Linear solves of implicit methods: straight-line sparse elimination, "
                            "a looped dense LU (lower-upper) factorization with partial pivoting, "
                            "or chosen by cost.")(fn)
-    fn = click.option("--newton-tol", "newton_tol", type=click.FloatRange(min=0, max=1,
+    fn = click.option("--newton-tol", "newton_tol", type=FiniteFloatRange(min=0, max=1,
                       min_open=True, max_open=True), default=None,
                       help="Newton tolerance of implicit methods: the largest |correction| / "
                            "state scale (default 2^-16 in float, 2^-40 in double).")(fn)
@@ -154,6 +198,31 @@ def set_option(fn):
     return click.option("--set", "set_pairs", multiple=True, metavar="NAME=VALUE",
                         help="Set a tunable parameter for the whole run (repeatable); a column "
                              "of --inputs named like one sets it tick by tick.")(fn)
+
+
+def log_options(fn):
+    """--resample and --strict-ranges for the commands that read an input log (check, replay)."""
+    fn = click.option("--strict-ranges", is_flag=True,
+                      help="Refuse a log whose inputs or parameters leave their declared range "
+                           "(by default a warning names the first such line).")(fn)
+    return click.option("--resample", is_flag=True,
+                        help="Hold each row of --inputs until the next onto the --dt grid when "
+                             "the log's times are not one tick apart (by default such a log is "
+                             "refused).")(fn)
+
+
+def read_inputs(path: Path, model, ticks, dt: float, resample: bool, strict_ranges: bool):
+    """The log of --inputs on the tick grid; inputs outside their range warn (or fail)."""
+    from .inputs import range_problem, read_log
+
+    log = read_log(path, model, ticks, dt=dt, resample=resample)
+    problem = range_problem(log, model, path)
+    if problem and strict_ranges:
+        raise CheckError(f"{problem}; fix the log or the model's ranges (--strict-ranges)")
+    if problem:
+        click.echo(f"tickwright: warning: {problem}; the checks of the model hold only inside "
+                   "its ranges (--strict-ranges makes this an error)", err=True)
+    return log
 
 
 def gate_before_run(model, method, dt, substeps, model_path, force_run: bool,
@@ -239,7 +308,7 @@ def with_values(model, settings: dict):
                                            for p in model.parameters))
 
 
-class Commands(click.Group):
+class Commands(OneLineGroup):
     """The command group: it suggests a close command name for a mistyped one, and keeps the
     arguments it was given (the review report shows the exact command line)."""
 
@@ -309,11 +378,15 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     from dataclasses import replace
 
     from .build import build_system_files, refuse_other_model
+    from .errors import EmitError
+    from .output import check_writable
     from .pipeline import generate
     from .report.json import json_text
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    if not check_only:
+        check_writable(out_dir, EmitError, "choose a writable folder for --out")
     options = generation_options(method, newton_iterations, newton_tol, linear_solve)
     gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
     say(f"generate {model.name} ({model.nx} state{'' if model.nx == 1 else 's'}) with "
@@ -348,7 +421,7 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @main.command()
 @click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
 @method_options
-@click.option("--dt", type=click.FloatRange(min=0, min_open=True), required=True,
+@click.option("--dt", type=POSITIVE, required=True,
               help="Tick period in seconds.")
 @click.option("--substeps", type=click.IntRange(min=1), default=1, show_default=True,
               help="Method steps per tick.")
@@ -361,10 +434,11 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
               help="Run the cross-check and the accuracy check on this log instead of the input "
                    "sweep: CSV with header t,<inputs>[,<tunable parameters>], one row per tick "
                    "(as for replay).")
+@log_options
 @set_option
 @force_run_option
 @click.option("--no-order", is_flag=True, help="Skip the order study.")
-@click.option("--tolerance", type=click.FloatRange(min=0, min_open=True), default=1e-2,
+@click.option("--tolerance", type=POSITIVE, default=1e-2,
               show_default=True,
               help="Accuracy target against solve_ivp, as a fraction of each state's scale "
                    "(the largest magnitude of its range, else of its run).")
@@ -387,8 +461,9 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @quiet_option
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, inputs_path,
-          set_pairs, force_run, no_order, tolerance, as_json, error_estimate, plot_dir,
-          plot_format, target_names, targets_dir, newton_iterations, newton_tol, linear_solve):
+          resample, strict_ranges, set_pairs, force_run, no_order, tolerance, as_json,
+          error_estimate, plot_dir, plot_format, target_names, targets_dir, newton_iterations,
+          newton_tol, linear_solve):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     With --inputs, the cross-check and the accuracy check run on a recorded log of inputs. With
@@ -397,7 +472,7 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     Stops at once when dt is beyond the stability limit (unless --force-run).
     Exit status 1 when any check fails.
     """
-    from .inputs import parameter_settings, parameter_table, read_log
+    from .inputs import parameter_settings, parameter_table
     from .methods import tolerance_note
     from .report import CheckOutcome
     from .report.json import check_data, json_text
@@ -405,17 +480,19 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     from .targets import check_on_targets, load_target
     from .verify import COLUMN, SWEEP, check as run_check
 
+    from .output import check_writable
+
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    if plot_dir:
+        check_writable(plot_dir, CheckError, "choose a writable folder for --plot")
     if (inputs_path or set_pairs) and (error_estimate or target_names):
         raise click.UsageError("--inputs and --set apply to the cross-check and the accuracy "
                                "check; run --error-estimate and --target without them")
     settings = parameter_settings(model, set_pairs)
     inputs, columns, scenario = None, {}, SWEEP
     if inputs_path:
-        log = read_log(inputs_path, model, ticks)
-        if not len(log.inputs):
-            raise CheckError(f"{inputs_path}: no rows after the header; write one row per tick")
+        log = read_inputs(inputs_path, model, ticks, dt, resample, strict_ranges)
         inputs, columns, scenario = log.inputs, log.parameters, inputs_path.name
     ticks = len(inputs) if inputs is not None else ticks or DEFAULT_CHECK_TICKS
     parameters = parameter_table(model, ticks, settings, columns, str(inputs_path))
@@ -611,6 +688,7 @@ def targets_command(targets_dir, as_json, toolchain):
                    f"{DEFAULT_REPLAY_TICKS}).")
 @click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path), required=True,
               help="CSV to write: t,<states>,<outputs>, one row for the start and one per tick.")
+@log_options
 @set_option
 @force_run_option
 @click.option("--json", "as_json", is_flag=True,
@@ -620,21 +698,24 @@ def targets_command(targets_dir, as_json, toolchain):
 @quiet_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path, set_pairs, force_run, as_json, newton_iterations, newton_tol, linear_solve):
+           out_path, resample, strict_ranges, set_pairs, force_run, as_json, newton_iterations,
+           newton_tol, linear_solve):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV.
 
     Stops at once when dt is beyond the stability limit (unless --force-run).
     """
-    from .inputs import held_defaults, parameter_settings, parameter_table, read_log
+    from .inputs import held_defaults, parameter_settings, parameter_table
     from .report.text import replay_done_line, replay_stop_message
+    from .output import check_writable
     from .run import replay as run_replay
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
+    check_writable(out_path, CheckError, "choose a writable path for --out", is_file=True)
     settings = parameter_settings(model, set_pairs)
     columns = {}
     if inputs_path:
-        log = read_log(inputs_path, model, steps)
+        log = read_inputs(inputs_path, model, steps, dt, resample, strict_ranges)
         inputs, columns = log.inputs, log.parameters
     else:
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)
@@ -679,16 +760,16 @@ def methods(tableau_file, as_json):
 @main.command()
 @click.argument("model_path", metavar="MODEL", type=click.Path(dir_okay=False, path_type=Path))
 @method_options
-@click.option("--dt", type=click.FloatRange(min=0, min_open=True),
+@click.option("--dt", type=POSITIVE,
               help="A tick period in seconds to check for the chosen --method.")
-@click.option("--tolerance", type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+@click.option("--tolerance", type=FiniteFloatRange(min=0, max=1, min_open=True, max_open=True),
               default=1e-3, show_default=True,
               help="Accuracy target: largest error as a fraction of each state's full scale "
                    "(max |range bound|); half of it goes to truncation, half to round-off. "
                    "Pass the same value to check --tolerance.")
-@click.option("--margin", type=click.FloatRange(min=0, max=1, min_open=True), default=0.8,
+@click.option("--margin", type=FiniteFloatRange(min=0, max=1, min_open=True), default=0.8,
               show_default=True, help="Use at most this fraction of the stability limit.")
-@click.option("--horizon", type=click.FloatRange(min=0, min_open=True),
+@click.option("--horizon", type=POSITIVE,
               help="Seconds the error estimates look ahead: the long run goes toward it (at "
                    "most 2000 ticks, the output marks a run stopped there) and undamped modes "
                    "are followed over it (default: two of the slowest time constants).")
@@ -710,10 +791,14 @@ def advise(model_path, method_id, tableau_file, dt, tolerance, margin, horizon, 
     from .report.json import json_text
     from .report.text import advice_lines, advice_warnings
 
+    from .output import check_writable
+
     model = load(model_path)
     method = resolve_method(method_id, tableau_file) if (method_id or tableau_file) else None
     if dt is not None and method is None:
         raise click.UsageError("--dt needs --method NAME (or --tableau FILE) to check it against")
+    if plot_dir:
+        check_writable(plot_dir, CheckError, "choose a writable folder for --plot")
     pool = candidates()
     advice = run_advice(model, method, dt, tolerance, margin, horizon, methods=pool, progress=say)
     if plot_dir:

@@ -7,8 +7,25 @@ for example ``heater.toml: states.T.rate: unknown symbol 'Tamb' (did you mean 'T
 from __future__ import annotations
 
 
+# Characters that would split a message over lines (or move the cursor) when it quotes user text.
+_BREAKS = {**{code: f"\\x{code:02x}" for code in (*range(32), 127)},
+           0x85: "\\x85", 0x2028: "\\u2028", 0x2029: "\\u2029"}
+
+
+def one_line(text: str) -> str:
+    """text with line breaks and control characters written as escapes (\\r, \\x00, ...)."""
+    return str(text).translate(_BREAKS)
+
+
 class TickwrightError(Exception):
-    """Base of every error the tool reports as one line (exit status 1)."""
+    """Base of every error the tool reports as one line (exit status 1).
+
+    The message is kept on one line whatever user text it quotes (a unit with a carriage
+    return, a name with a newline): control characters are shown as escapes.
+    """
+
+    def __init__(self, message: str = "", *args):
+        super().__init__(one_line(message), *args)
 
 
 class ModelError(TickwrightError):

@@ -19,14 +19,27 @@ from .errors import CheckError
 from .model import Model
 
 
+# How far a row's time may be from its tick, as a fraction of dt: logs print times rounded
+# (3e-05, 6e-05, ...), and a row a whole tick off is a log at another rate.
+TIME_TOLERANCE = 0.01
+# Ticks a resampled log may have: ten million rows of a few inputs are some hundred MB of
+# numbers, more than any bench log needs at its own tick.
+MAX_RESAMPLED_TICKS = 10_000_000
+
+
 @dataclass(frozen=True)
 class InputLog:
     """What a log holds: inputs (n, nu) in the order of model.inputs, and the per-tick values of
     the tunable parameters that have a column (name -> (n,) array, in the order of model.tunable).
+
+    lines: (n,) the file's line number of each tick's row (a resampled log repeats a row);
+    times: (n,) the time column of those rows, in s.
     """
 
     inputs: np.ndarray
     parameters: dict[str, np.ndarray]
+    lines: np.ndarray | None = None
+    times: np.ndarray | None = None
 
 
 def read_input_log(path: str | Path, model: Model, ticks: int | None = None) -> np.ndarray:
@@ -34,21 +47,28 @@ def read_input_log(path: str | Path, model: Model, ticks: int | None = None) -> 
     return read_log(path, model, ticks).inputs
 
 
-def read_log(path: str | Path, model: Model, ticks: int | None = None) -> InputLog:
+def read_log(path: str | Path, model: Model, ticks: int | None = None, dt: float | None = None,
+             resample: bool = False) -> InputLog:
     """A CSV with header t,<input names> (inputs in any order), one row per tick -> InputLog.
 
     A column named like a tunable parameter sets that parameter before each tick (the C's
-    context field, the reference's parameter). ticks keeps the first rows only. The time column
-    names each row; its values are not used (the tick is dt).
+    context field, the reference's parameter). ticks keeps the first ticks only. The time column
+    must increase; with dt, row i must be at t_0 + i*dt (within TIME_TOLERANCE of a tick), or with
+    resample the rows are held onto the tick grid (each tick takes the last row at or before its
+    start, as a sample-and-hold would).
     """
     path = Path(path)
     try:
         text = path.read_text(encoding="utf-8")
-    except (FileNotFoundError, IsADirectoryError, UnicodeDecodeError) as exc:
-        raise CheckError(f"{path}: cannot read the input log: {exc}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CheckError(f"{path}: cannot read the input log: "
+                         f"{getattr(exc, 'strerror', None) or exc}") from None
     reader = csv.reader(io.StringIO(text))
     # (line number in the file, cells) of every row that is not blank
-    rows = [(reader.line_num, r) for r in reader if any(cell.strip() for cell in r)]
+    try:
+        rows = [(reader.line_num, r) for r in reader if any(cell.strip() for cell in r)]
+    except csv.Error as exc:
+        raise CheckError(f"{path}: line {reader.line_num}: not CSV: {exc}") from None
     if not rows:
         raise CheckError(f"{path}: empty; expected a header '{model.time},<inputs>' and one row "
                          "per tick")
@@ -66,9 +86,12 @@ def read_log(path: str | Path, model: Model, ticks: int | None = None) -> InputL
         raise CheckError(f"{path}: header: expected the columns {model.time},{','.join(names)} "
                          f"(any order after '{model.time}', then any tunable parameters), got "
                          f"{','.join(header)}{hint}")
+    if len(rows) < 2:
+        raise CheckError(f"{path}: no rows after the header; write one row per tick")
     names = names + tunable
-    order = [header.index(n) for n in names]
-    data = np.zeros((len(rows) - 1, len(names)))
+    order = [0] + [header.index(n) for n in names]
+    data = np.zeros((len(rows) - 1, len(names) + 1))
+    lines = np.array([r for r, _ in rows[1:]])
     for i, (r, row) in enumerate(rows[1:]):
         if len(row) != len(header):
             raise CheckError(f"{path}: line {r}: {len(row)} values, expected {len(header)}")
@@ -81,10 +104,81 @@ def read_log(path: str | Path, model: Model, ticks: int | None = None) -> InputL
             if not math.isfinite(v):
                 raise CheckError(f"{path}: line {r}: column '{header[col]}': must be finite")
             data[i, j] = v
+    times = data[:, 0]
+    later = np.flatnonzero(np.diff(times) <= 0)
+    if later.size:
+        k = int(later[0]) + 1
+        raise CheckError(f"{path}: line {lines[k]}: {model.time} = {times[k]:g} is not after the "
+                         f"row before ({times[k - 1]:g}); rows must be in time order")
+    if dt is not None:
+        rows_at = _ticks_of(times, float(dt), resample)
+        if rows_at is None:
+            _refuse_spacing(path, model, times, lines, float(dt))
+        if not len(rows_at):
+            raise CheckError(f"{path}: resampling {times[-1] - times[0]:g} s of log at --dt "
+                             f"{float(dt):g} s would make more than {MAX_RESAMPLED_TICKS} ticks; "
+                             "use a longer --dt or a shorter log")
+        data, lines = data[rows_at], lines[rows_at]
     data = data if ticks is None else data[:ticks]
+    lines = lines if ticks is None else lines[:ticks]
     nu = len(model.inputs)
-    return InputLog(inputs=data[:, :nu],
-                    parameters={n: data[:, nu + k] for k, n in enumerate(tunable)})
+    return InputLog(inputs=data[:, 1:1 + nu],
+                    parameters={n: data[:, 1 + nu + k] for k, n in enumerate(tunable)},
+                    lines=lines, times=data[:, 0])
+
+
+def _ticks_of(times: np.ndarray, dt: float, resample: bool) -> np.ndarray | None:
+    """The row of each tick: every row when the rows are one tick apart (None when they are not
+    and resample is off), else the last row at or before each tick's start."""
+    offsets = (times - times[0]) / dt
+    if np.all(np.abs(offsets - np.arange(len(times))) <= TIME_TOLERANCE):
+        return np.arange(len(times))
+    if not resample:
+        return None
+    if not offsets[-1] < MAX_RESAMPLED_TICKS:
+        return np.zeros(0, dtype=int)
+    count = int(np.floor(offsets[-1] + TIME_TOLERANCE)) + 1
+    return np.searchsorted(offsets, np.arange(count) + TIME_TOLERANCE, side="right") - 1
+
+
+def _refuse_spacing(path, model: Model, times, lines, dt: float) -> None:
+    """One line: the first row off its tick, the log's own spacing and the two ways out."""
+    offsets = (times - times[0]) / dt
+    k = int(np.flatnonzero(np.abs(offsets - np.arange(len(times))) > TIME_TOLERANCE)[0])
+    spacing = float(np.median(np.diff(times)))
+    raise CheckError(f"{path}: line {lines[k]}: {model.time} = {times[k]:g} s, but row {k} of a "
+                     f"log at --dt {dt:g} s would be at {times[0] + k * dt:g} s (the log's rows "
+                     f"are {spacing:g} s apart); pass --dt {spacing:g}, or --resample to hold "
+                     "each row until the next")
+
+
+def range_problem(log: InputLog, model: Model, path) -> str:
+    """The first tick whose input or parameter is outside its declared range, as one line, or ''.
+
+    Names the line of the file, the column, the value and the range, and how many ticks are
+    outside in all.
+    """
+    columns = [(u.name, u.range, log.inputs[:, j]) for j, u in enumerate(model.inputs)]
+    by_name = {p.name: p for p in model.parameters}
+    columns += [(name, by_name[name].range, values) for name, values in log.parameters.items()]
+    first = None
+    outside_any = np.zeros(len(log.inputs), dtype=bool)
+    for name, rng, values in columns:
+        if rng is None or not len(values):
+            continue
+        outside = (values < rng[0]) | (values > rng[1])
+        outside_any |= outside
+        if outside.any():
+            k = int(np.argmax(outside))
+            if first is None or k < first[0]:
+                first = (k, name, float(values[k]), rng)
+    if first is None:
+        return ""
+    k, name, value, rng = first
+    count = int(outside_any.sum())
+    line = f"line {log.lines[k]}" if log.lines is not None else f"tick {k}"
+    return (f"{path}: {line}: {name} = {value:g} is outside its declared range [{rng[0]:g}, "
+            f"{rng[1]:g}] ({count} of {len(log.inputs)} ticks are outside)")
 
 
 def parameter_settings(model: Model, pairs) -> dict[str, float]:

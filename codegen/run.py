@@ -21,6 +21,7 @@ from .emit import STATUS_CODES
 from .emit.printer import FLOAT
 from .errors import CheckError
 from .model import Model
+from .output import write_files
 from .reference import Trajectory
 
 # Status value -> name, as the generated header spells it after the prefix (HEATER_NONFINITE).
@@ -124,12 +125,9 @@ class Replay:
         return self.csv_text() if path is None else self.save_csv(path)
 
     def save_csv(self, path: str | Path) -> Path:
-        """Write csv_text() to path whole (through a temporary file): never half a file."""
+        """Write csv_text() to path whole (output.write_files): never half a file."""
         path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = path.with_name(path.name + ".tmp")
-        tmp.write_text(self.csv_text(), encoding="utf-8", newline="\n")
-        tmp.replace(path)
+        write_files([(path, self.csv_text())], CheckError, "choose a writable path for --out")
         return path
 
 

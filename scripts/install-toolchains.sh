@@ -1,8 +1,9 @@
 #!/bin/sh
 # Install what the target checks need (Debian/Ubuntu): host gcc, Arm and RISC-V bare-metal gcc with
-# picolibc, the QEMU system emulators, cppcheck and valgrind: the package set of docs/toolchains.md,
-# without recommended packages; and what the tests of the build files and the review report use:
-# cmake and make, and the chromium browser (headless). Idempotent: installs only what is missing, and exits non-zero if
+# picolibc, the QEMU system emulators, cppcheck, valgrind and clang (its static analyzer runs on
+# the generated code): the package set of docs/toolchains.md, without recommended packages; and
+# what the tests of the build files and the review report use: cmake and make, and the chromium
+# browser (headless). Idempotent: installs only what is missing, and exits non-zero if
 # anything is still missing afterwards.
 set -u
 
@@ -17,6 +18,7 @@ riscv64-unknown-elf-gcc|gcc-riscv64-unknown-elf
 qemu-system-riscv32|qemu-system-misc
 cppcheck|cppcheck
 valgrind|valgrind
+clang|clang
 timeout|coreutils
 cmake|cmake
 make|make

@@ -82,3 +82,25 @@ def readme_block(heading: str, language: str) -> str:
     found = re.search(rf"```{language}\n(.*?)```", section, re.S)
     assert found, f"README: no {language} block under {heading!r}"
     return found.group(1)
+
+
+# ---- the fuzz suite's case count -----------------------------------------------------------------
+
+# The user property under which each fuzz test records how many generated cases it ran.
+FUZZ_PROPERTY = "fuzz_cases"
+
+
+def pytest_terminal_summary(terminalreporter):
+    """Print how many generated cases the fuzz tests ran (summed over xdist workers too)."""
+    counts: dict[str, int] = {}
+    for outcome in ("passed", "failed"):
+        for report in terminalreporter.stats.get(outcome, []):
+            for name, value in getattr(report, "user_properties", ()):
+                if name == FUZZ_PROPERTY:
+                    counts[report.nodeid] = counts.get(report.nodeid, 0) + int(value)
+    if counts:
+        terminalreporter.write_sep("-", "fuzz cases")
+        for nodeid, count in sorted(counts.items()):
+            terminalreporter.write_line(f"{count:7d}  {nodeid}")
+        terminalreporter.write_line(f"{sum(counts.values()):7d}  generated cases in "
+                                    f"{len(counts)} fuzz tests")

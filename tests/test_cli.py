@@ -162,6 +162,9 @@ def test_usage_and_domain_errors(tmp_path, monkeypatch, args, code, fragment):
     result = run(*args)
     assert result.exit_code == code, result.output
     assert fragment in result.output
+    # usage mistakes (2) and domain errors (1) alike: one line, no usage text
+    [line] = [text for text in result.output.splitlines() if text.strip()]
+    assert line.startswith("tickwright: error: ") and "Usage:" not in result.output
     assert not (tmp_path / "x").exists()
 
 

@@ -14,6 +14,7 @@ import sympy as sp
 
 from ..errors import CheckError
 from ..model import Model
+from ..reference.numeric import lambdify
 
 # Envelope sampling: all corners up to this many, else this many corners from a Halton sequence.
 MAX_CORNERS = 64
@@ -103,7 +104,8 @@ def _halton(d: int, n: int) -> np.ndarray:
 def _jacobian_with_parameters(model: Model):
     J = sp.Matrix(model.f).jacobian(sp.Matrix(model.x))
     psyms = [p.symbol for p in model.parameters]
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy")
+    fn = lambdify([model.t, list(model.x), list(model.u), psyms], J, modules="numpy",
+                     dummify=True)
     names = [p.name for p in model.parameters]
 
     def jac(t, x, u, parameters: dict):

@@ -32,6 +32,7 @@ from ..errors import CheckError
 from ..methods import EXACT
 from ..methods.analysis import analyse, in_stability_region, stability_limit
 from ..model import Model
+from ..reference.numeric import lambdify
 from .envelope import ZERO_EIGENVALUE, decaying, eigenvalues, envelope
 
 # Up to this many states the dense eigenvalues at every envelope point cost well under a second
@@ -366,4 +367,4 @@ def _evaluate(expr, env):
     if type(expr) in _FUNCTIONS:
         return _FUNCTIONS[type(expr)](*args)
     symbols = sorted(expr.free_symbols, key=lambda s: s.name)
-    return sp.lambdify(symbols, expr, modules="numpy")(*[env[s] for s in symbols])
+    return lambdify(symbols, expr, modules="numpy", dummify=True)(*[env[s] for s in symbols])

@@ -38,6 +38,7 @@ import sympy as sp
 
 from ..methods import analysis
 from ..model import Model
+from ..reference.numeric import lambdify
 from .envelope import ZERO_EIGENVALUE
 
 # A mode can swing a state from one end of its range to the other: twice its full scale at most.
@@ -83,8 +84,8 @@ def _linearization(model: Model):
     ju = f.jacobian(sp.Matrix(model.u)) if model.inputs else sp.zeros(model.nx, 0)
     psyms = [p.symbol for p in model.parameters]
     args = [model.t, list(model.x), list(model.u), psyms]
-    fns = [sp.lambdify(args, m, modules="numpy") for m in (f, jx)]
-    fu = sp.lambdify(args, ju, modules="numpy") if model.inputs else None
+    fns = [lambdify(args, m, modules="numpy", dummify=True) for m in (f, jx)]
+    fu = lambdify(args, ju, modules="numpy", dummify=True) if model.inputs else None
     names = [p.name for p in model.parameters]
     nx, nu = model.nx, len(model.inputs)
 

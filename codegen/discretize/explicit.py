@@ -12,6 +12,8 @@ k_i = f(t0 + c_i h, y0 + h * sum_j a_ij k_j).
 
 from __future__ import annotations
 
+import math
+
 import sympy as sp
 
 from ..errors import MethodError
@@ -22,6 +24,8 @@ from .ir import Block, Stage, StepProgram
 
 def exact_dt(dt) -> sp.Rational:
     """A step size as the exact decimal the user wrote (0.001 -> 1/1000)."""
+    if not isinstance(dt, sp.Rational) and not math.isfinite(float(dt)):
+        raise MethodError(f"--dt: must be a finite number of seconds, got {dt}")
     value = sp.Rational(repr(float(dt))) if not isinstance(dt, sp.Rational) else dt
     if not value > 0:
         raise MethodError(f"--dt: must be a positive number of seconds, got {dt}")

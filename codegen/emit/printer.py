@@ -7,12 +7,15 @@ pi and e become literals (M_PI is double and not C99).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from fractions import Fraction
 
 import numpy as np
 import sympy as sp
 from sympy.printing.c import C99CodePrinter
+
+from ..errors import EmitError
 
 FLOAT = "float"
 DOUBLE = "double"
@@ -32,23 +35,59 @@ _MATH = {  # sympy function -> C99 math.h name (double); float appends 'f'
 }
 
 
+# Magnitudes that round to infinity and to zero in every precision (double's largest finite
+# number is about 1.8e308, its smallest subnormal about 4.9e-324).
+OUTSIDE_DOUBLE = sp.Float("1e310")
+BELOW_DOUBLE = sp.Float("1e-330")
+
+
 def rounded(value: sp.Expr, precision: str) -> float:
-    """The exact value correctly rounded to the target floating-point format."""
-    exact = Fraction(str(sp.Float(sp.N(value, EXACT_DIGITS), EXACT_DIGITS)))
-    as_double = float(exact)
+    """The exact value correctly rounded to the target floating-point format.
+
+    Values far beyond the double range round to +-inf, far below it to +-0, before any exact
+    arithmetic: exp(1e39) as a fraction would have 10^38 digits.
+    """
+    approx = sp.Float(sp.N(value, EXACT_DIGITS), EXACT_DIGITS)
+    if abs(approx) > OUTSIDE_DOUBLE:
+        return math.copysign(math.inf, float(sp.sign(approx)))
+    if abs(approx) < BELOW_DOUBLE:
+        return math.copysign(0.0, float(sp.sign(approx)) or 1.0)
+    exact = Fraction(str(approx))
+    try:
+        as_double = float(exact)
+    except OverflowError:
+        return math.copysign(math.inf, exact)
     if precision == DOUBLE:
         return as_double
-    f = np.float32(as_double)
+    with np.errstate(over="ignore"):
+        f = np.float32(as_double)
+    if not np.isfinite(f):
+        return float(f)
     candidates = [f, np.nextafter(f, np.float32(np.inf)), np.nextafter(f, np.float32(-np.inf))]
     best = min(candidates, key=lambda v: abs(Fraction(float(v)) - exact))
     return float(best)
+
+
+# The smallest positive normal number of each precision: a tick or a constant below it has lost
+# its precision (a subnormal) or rounds to zero.
+SMALLEST_NORMAL = {FLOAT: float(np.finfo(np.float32).tiny),
+                   DOUBLE: float(np.finfo(np.float64).tiny)}
+# The largest finite number of each precision.
+LARGEST = {FLOAT: float(np.finfo(np.float32).max), DOUBLE: float(np.finfo(np.float64).max)}
+
+
+def _short(value, limit: int = 40) -> str:
+    text = str(value)
+    return text if len(text) <= limit else str(sp.N(value, 4))[:limit]
 
 
 def literal(value, precision: str) -> str:
     """A C floating literal for an exact value, with enough digits to round-trip."""
     v = rounded(sp.sympify(value), precision)
     if not np.isfinite(v):
-        raise ValueError(f"value {value} does not fit in {precision}")
+        fix = "use --precision double" if precision == FLOAT else "use a shorter --dt"
+        raise EmitError(f"the constant {_short(value)} is beyond the range of {precision}; "
+                        f"rescale the model or {fix}")
     if precision == FLOAT:
         text = f"{np.float32(v):.{ROUND_TRIP_DIGITS[FLOAT]}g}"
         if float(np.float32(text)) != v:  # pragma: no cover - guarded by the round-trip test
@@ -114,7 +153,7 @@ class StepPrinter(C99CodePrinter):
                 first, rest = expr.args[0], type(expr)(*expr.args[1:])
                 args = f"{self._print(first)}, {self._print(rest)}"
             return f"{_MATH[name]}{self.suffix}({args})"
-        raise ValueError(f"function '{name}' has no C translation")
+        raise EmitError(f"function '{name}' has no C translation")
 
     _print_Abs = _print_Function
     _print_Min = _print_Function
@@ -158,7 +197,7 @@ class StepPrinter(C99CodePrinter):
     def _print_Piecewise(self, expr):
         *pieces, (last, cond) = expr.args
         if cond is not sp.true:
-            raise ValueError("Piecewise needs a final (value, True) branch")
+            raise EmitError("Piecewise needs a final (value, True) branch")
         text = self._print(last)
         for value, condition in reversed(pieces):
             text = f"(({self._print(condition)}) ? ({self._print(value)}) : ({text}))"

@@ -893,10 +893,15 @@ def ray_limit(coefficients: tuple[tuple, tuple], lam: complex,
     region up to h = upto.
     """
     p, q = coefficients
-    bound = None if upto is None else sp.Rational(float(upto))
-    h = _first_sign_loss(_ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)),
-                                         sp.Rational(abs(float(lam.imag)))), bound)
-    return None if h is None else float(h)
+    # Followed in t = h * 2^k with 2^k near |lambda| (an exact scaling): the root is then of
+    # order one whatever |lambda| is, and locating it to 1e-40 takes the same few steps for an
+    # eigenvalue of 1e39 as for one of 1 (measured: minutes otherwise).
+    k = math.frexp(abs(lam))[1]
+    scale = sp.Integer(2) ** k
+    bound = None if upto is None else sp.Rational(float(upto)) * scale
+    t = _first_sign_loss(_ray_polynomial(list(p), list(q), sp.Rational(float(lam.real)) / scale,
+                                         sp.Rational(abs(float(lam.imag))) / scale), bound)
+    return None if t is None else float(t / scale)
 
 
 def ray_directions(eigenvalues) -> np.ndarray:

@@ -13,6 +13,10 @@ import ast
 import sympy as sp
 
 from ..errors import MethodError, located
+from ..model.expressions import MAX_NESTING, nesting, power_problem
+
+# Characters of one entry: the longest published coefficient in closed form is far shorter.
+MAX_ENTRY_CHARS = 2000
 
 _EXACT_FUNCTIONS = {"sqrt": sp.sqrt, "Rational": sp.Rational}
 
@@ -32,12 +36,24 @@ def exact(value, where: str = "", item: str = "") -> sp.Expr:
         return sp.Rational(repr(value))
     if not isinstance(value, str):
         raise MethodError(located(where, item, "expected a number or an exact string like \"1/3\""))
+    shown = repr(value if len(value) <= 60 else value[:60] + "...")
+    if len(value) > MAX_ENTRY_CHARS or not value.isascii():
+        raise MethodError(located(where, item, f"cannot read {shown}; write a number or an exact "
+                                  "expression such as \"1/3\" (plain ASCII, at most "
+                                  f"{MAX_ENTRY_CHARS} characters)"))
     try:
         tree = ast.parse(value.strip(), mode="eval")
-    except SyntaxError:
-        raise MethodError(located(where, item, f"cannot read {value!r}; write a number or an exact "
+    except (SyntaxError, ValueError, RecursionError, MemoryError):
+        raise MethodError(located(where, item, f"cannot read {shown}; write a number or an exact "
                                   "expression such as \"1/3\" or \"sqrt(3)/6\"")) from None
-    return _exact_node(tree.body, value, where, item)
+    if nesting(tree.body) > MAX_NESTING:
+        raise MethodError(located(where, item, f"{shown} is nested more than {MAX_NESTING} levels "
+                                  "deep; write it flatter"))
+    result = _exact_node(tree.body, shown, where, item)
+    if result.has(sp.zoo, sp.nan, sp.oo, -sp.oo) or result.is_real is False \
+            or not result.is_number:
+        raise MethodError(located(where, item, f"{shown} is not a finite real number"))
+    return result
 
 
 def _exact_node(node, text, where, item):
@@ -52,7 +68,10 @@ def _exact_node(node, text, where, item):
         left = _exact_node(node.left, text, where, item)
         right = _exact_node(node.right, text, where, item)
         if isinstance(node.op, ast.Div) and right == 0:
-            raise MethodError(located(where, item, f"division by zero in {text!r}"))
+            raise MethodError(located(where, item, f"division by zero in {text}"))
+        problem = power_problem(left, right) if isinstance(node.op, ast.Pow) else ""
+        if problem:
+            raise MethodError(located(where, item, f"{text}: {problem}"))
         ops = {ast.Add: lambda x, y: x + y, ast.Sub: lambda x, y: x - y,
                ast.Mult: lambda x, y: x * y, ast.Div: lambda x, y: x / y,
                ast.Pow: lambda x, y: x ** y}
@@ -60,8 +79,16 @@ def _exact_node(node, text, where, item):
     if isinstance(node, ast.Call) and isinstance(node.func, ast.Name) \
             and node.func.id in _EXACT_FUNCTIONS and not node.keywords:
         args = [_exact_node(arg, text, where, item) for arg in node.args]
+        if node.func.id == "sqrt" and len(args) != 1 or \
+                node.func.id == "Rational" and not (1 <= len(args) <= 2):
+            wanted = "one argument" if node.func.id == "sqrt" else "p or p, q"
+            raise MethodError(located(where, item, f"{text}: {node.func.id}() takes {wanted}"))
+        if node.func.id == "Rational" and (not all(a.is_Rational for a in args)
+                                           or len(args) == 2 and args[1] == 0):
+            raise MethodError(located(where, item, f"{text}: Rational(p, q) takes whole "
+                                      "numbers p and q with q not zero"))
         return _EXACT_FUNCTIONS[node.func.id](*args)
-    raise MethodError(located(where, item, f"{text!r} is not an exact number; only numbers, "
+    raise MethodError(located(where, item, f"{text} is not an exact number; only numbers, "
                               "+ - * / **, parentheses, sqrt() and Rational() are allowed"))
 
 

@@ -41,6 +41,22 @@ HUGE_VAL HUGE_VALF INFINITY NAN EOF FLT_EPSILON DBL_EPSILON FLT_MAX DBL_MAX
 size_t ptrdiff_t int8_t int16_t int32_t int64_t uint8_t uint16_t uint32_t uint64_t float_t double_t
 main errno assert abs min max sign Piecewise pi E
 """.split())
+# C99's <math.h> reserves every function name above with an f and an l suffix (sinf, expl; the
+# float build calls the f ones), and these macros and functions besides; <stddef.h> and
+# <stdint.h> define the rest. A model name equal to one would shadow or be replaced by it.
+C_LIBRARY_NAMES = frozenset(
+    {name + suffix for name in RESERVED_NAMES if name.islower() for suffix in ("f", "l")}
+    | set("""
+isgreater isgreaterequal isless islessequal islessgreater isunordered isnormal math_errhandling
+MATH_ERRNO MATH_ERREXCEPT HUGE_VALL offsetof wchar_t max_align_t static_assert signgam
+""".split()))
+# Identifier families that C99's <stdint.h>, <float.h> and <math.h> use for macros and types
+# (C99 7.18, 7.7 / 5.2.4.2.2, 7.12): a model name in one of them could be replaced by a macro.
+RESERVED_PATTERN = re.compile(
+    r"(u?int(_least|_fast)?[0-9]+_t|u?int(max|ptr)_t"
+    r"|U?INT(_LEAST|_FAST)?[0-9]+_(MAX|MIN|C)|U?INT(MAX|PTR)_(MAX|MIN|C)"
+    r"|(SIZE|PTRDIFF|SIG_ATOMIC|WCHAR|WINT)_(MAX|MIN)"
+    r"|(FLT|DBL|LDBL|FP|DECIMAL)_[A-Z0-9_]*)\Z")
 
 # Whitelisted functions of the expression language and their sympy meaning.
 FUNCTIONS = {
@@ -151,6 +167,7 @@ class Model:
                 name = item if isinstance(item, str) else item.name
                 item_path = section if section == "time" else f"{section}.{name}"
                 check_name(name, where, item_path)
+                check_prefixed(name, self.name, where, item_path)
                 if name in seen:
                     raise ModelError(located(where, item_path, f"duplicate name '{name}', already "
                                              f"used in {seen[name]}; rename one of them"))
@@ -169,6 +186,7 @@ class Model:
         for state in self.states:
             check_symbols(state.rate, allowed, where, f"states.{state.name}.rate")
         check_symbols_outputs(self.outputs, allowed, where)
+        check_values_defined(self, where)
         # Resolve outputs that use other outputs here, so every Model has resolved outputs,
         # however it was built (Model(...) directly, define, or a model file).
         object.__setattr__(self, "outputs", resolve_outputs(self.outputs))
@@ -215,9 +233,18 @@ def check_name(name, where: str, item: str) -> None:
                                  "and '_', starting with a letter"))
     if name in C_KEYWORDS or keyword.iskeyword(name):
         raise ModelError(located(where, item, f"'{name}' is a C or Python keyword; rename it"))
-    if name in RESERVED_NAMES or name.startswith(INTERNAL_PREFIX) or "__" in name:
+    if name in RESERVED_NAMES or name in C_LIBRARY_NAMES or RESERVED_PATTERN.match(name) \
+            or name.startswith(INTERNAL_PREFIX) or "__" in name:
         raise ModelError(located(where, item, f"'{name}' is reserved (a math function, a C "
                                  f"library name, '__' or the '{INTERNAL_PREFIX}' prefix); rename it"))
+
+
+def check_prefixed(name: str, prefix: str, where: str, item: str) -> None:
+    """Reject a quantity named like the generated code's public names ('<prefix>_...', in any
+    case): HEATER_OK is a macro of the heater's header, heater_reset one of its functions."""
+    if name.lower().startswith(prefix.lower() + "_"):
+        raise ModelError(located(where, item, f"'{name}' looks like a name of the generated code "
+                                 f"('{prefix}_...', '{prefix.upper()}_...'); rename it"))
 
 
 def check_finite(value, where: str, item: str) -> None:
@@ -236,6 +263,45 @@ def check_range(rng, where: str, item: str) -> None:
         check_finite(v, where, item)
     if not rng[0] <= rng[1]:
         raise ModelError(located(where, item, f"low {rng[0]} is above high {rng[1]}; swap them"))
+
+
+def _undefined(expr: sp.Expr) -> str:
+    """What is wrong with an expression once every parameter has its value, or ''.
+
+    Division by zero (1/0 is zoo in sympy), an infinite or undefined value, or a number that is
+    not real (the square root or the logarithm of a negative parameter) cannot be printed as C.
+    """
+    if expr.has(sp.zoo, sp.nan):
+        return "divides by zero"
+    if expr.has(sp.oo, -sp.oo):
+        return "is infinite"
+    if expr.has(sp.I) or any(a.is_number and a.is_real is False for a in expr.atoms(sp.Pow)):
+        return "is not a real number"
+    return ""
+
+
+def check_values_defined(model: "Model", where: str) -> None:
+    """Every rate and output, with every parameter at its value, must be a finite real expression.
+
+    The baked parameters become literals of the C (a rate x/L with L = 0 would make the printer
+    write 1/0); a tunable one starts at its value. The message names the parameters involved.
+    """
+    values = {p.symbol: sp.Rational(repr(float(p.value))) for p in model.parameters}
+    if not values:
+        return
+    items = [(f"states.{s.name}.rate", s.rate) for s in model.states] + \
+        [(f"outputs.{o.name}", o.expr) for o in model.outputs]
+    for item, expr in items:
+        problem = _undefined(expr.xreplace(values))
+        if not problem:
+            continue
+        used = [p for p in model.parameters if p.symbol in expr.free_symbols]
+        culprits = [p for p in used if _undefined(expr.xreplace({p.symbol: values[p.symbol]}))]
+        named = culprits or used
+        shown = ", ".join(f"{p.name} = {p.value:g}" for p in named)
+        raise ModelError(located(where, item, f"{problem} with {shown}; give "
+                                 f"{'that parameter' if len(named) == 1 else 'those parameters'}"
+                                 " a value where the expression is defined"))
 
 
 def _suggest(name: str, allowed) -> str:

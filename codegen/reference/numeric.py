@@ -15,6 +15,8 @@ model compile each expression list once.
 from __future__ import annotations
 
 import functools
+import sys
+import threading
 
 import numpy as np
 import sympy as sp
@@ -24,6 +26,50 @@ from ..model import Model
 # Models, expression lists and parameter sets whose functions are kept (the advice asks for three
 # lists per model; the checks for two per precision).
 CACHED_FUNCTIONS = 64
+
+
+# Python compiles a sum of n terms n levels deep, so lambdify's compile of a spreadsheet-built
+# rate (thousands of terms, at most model.expressions.MAX_OPERATORS) needs that much recursion:
+# it runs with this limit on a thread with this stack (reserved, not committed; measured: the
+# main thread's 8 MiB holds about 100,000 levels of Python's parser).
+DEEP_RECURSION_LIMIT = 250_000
+DEEP_STACK_BYTES = 256 * 2 ** 20
+
+
+def lambdify(args, exprs, **options):
+    """sp.lambdify, safe for expressions of any length: the one lambdify helper.
+
+    The compile runs on a thread with a large stack and a raised recursion limit, so a long
+    flat sum compiles instead of ending in a RecursionError.
+    """
+    result: dict = {}
+
+    def compile_it():
+        try:
+            result["fn"] = sp.lambdify(args, exprs, **options)
+        except BaseException as exc:  # handed to the caller's thread below
+            result["error"] = exc
+
+    old_limit, old_size = sys.getrecursionlimit(), threading.stack_size()
+    threading.stack_size(DEEP_STACK_BYTES)
+    sys.setrecursionlimit(max(old_limit, DEEP_RECURSION_LIMIT))
+    try:
+        worker = threading.Thread(target=compile_it, name="tickwright-lambdify")
+        try:
+            worker.start()
+        except RuntimeError:  # no room for such a stack here: compile on this thread
+            compile_it()
+            worker = None
+    finally:
+        threading.stack_size(old_size)
+    try:
+        if worker is not None:
+            worker.join()
+    finally:
+        sys.setrecursionlimit(old_limit)
+    if "error" in result:
+        raise result["error"]
+    return result["fn"]
 
 
 def numeric(model: Model, exprs, parameters: dict[str, float] | None = None, shape=None,
@@ -46,7 +92,8 @@ def numeric(model: Model, exprs, parameters: dict[str, float] | None = None, sha
 def _vector(model: Model, exprs, key, shape):
     psyms = [p.symbol for p in model.parameters]
     target = exprs if isinstance(exprs, sp.MatrixBase) else list(exprs)
-    fn = sp.lambdify([model.t, list(model.x), list(model.u), psyms], target, modules="numpy")
+    fn = lambdify([model.t, list(model.x), list(model.u), psyms], target, modules="numpy",
+                     dummify=True)
     values = dict(key)
     pvals = [values[p.name] for p in model.parameters]
 
@@ -64,8 +111,8 @@ def _scalar(model: Model, exprs, key, shape):
     # Exact decimals of the float values: sympy folds constants exactly, the result rounds once.
     subs = {p.symbol: sp.Rational(repr(float(values[p.name]))) for p in model.parameters}
     flat = list(exprs)
-    fn = sp.lambdify([model.t, *model.x, *model.u], [sp.sympify(e).xreplace(subs) for e in flat],
-                     modules="math")
+    fn = lambdify([model.t, *model.x, *model.u], [sp.sympify(e).xreplace(subs) for e in flat],
+                     modules="math", dummify=True)
     out_shape = exprs.shape if isinstance(exprs, sp.MatrixBase) else (len(flat),)
     out_shape = out_shape if shape is None else shape
     nan = np.full(len(flat), np.nan).reshape(out_shape)

@@ -8,11 +8,13 @@ its path; the files carry no timestamps (SVG and PNG metadata dates are switched
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
 import numpy as np
 
 from ..errors import CheckError
+from ..output import write_files
 
 FORMATS = ("png", "svg")
 # Pixels per inch of PNG output: a readable figure of about 1000 x 700 pixels.
@@ -39,12 +41,13 @@ def _save(fig, path: Path) -> Path:
     suffix = path.suffix.lstrip(".").lower()
     if suffix not in FORMATS:
         raise CheckError(f"{path}: picture format must be one of {', '.join(FORMATS)}")
-    path.parent.mkdir(parents=True, exist_ok=True)
     metadata = {"Date": None} if suffix == "svg" else {"Software": None}
-    fig.savefig(path, dpi=DPI, metadata=metadata)
+    buffer = io.BytesIO()
+    fig.savefig(buffer, format=suffix, dpi=DPI, metadata=metadata)
     import matplotlib.pyplot as plt
 
     plt.close(fig)
+    write_files([(path, buffer.getvalue())], CheckError, "choose a writable folder for --plot")
     return path
 
 
