@@ -85,16 +85,6 @@ class CSource:
         return write_files([(path, text) for path, (_, text) in zip(targets, self.files)],
                            EmitError, fix)
 
-
-def _generated(path: Path) -> bool:
-    """Whether path starts like a file tickwright generated (unreadable counts as foreign)."""
-    try:
-        with open(path, "rb") as stream:
-            head = stream.read(400).decode("utf-8", errors="replace")
-    except OSError:
-        return False
-    return GENERATED_MARKER in head
-
     def differences(self, out_dir: str | Path) -> list[FileDifference]:
         """Compare the files with the ones in out_dir, writing nothing (emit --check): one
         FileDifference per file that is missing or whose text differs, in the order of files.
@@ -117,6 +107,15 @@ def _generated(path: Path) -> bool:
             found.append(FileDifference(path, line + 1, _line(want, line), _line(have, line)))
         return found
 
+
+def _generated(path: Path) -> bool:
+    """Whether path starts like a file tickwright generated (unreadable counts as foreign)."""
+    try:
+        with open(path, "rb") as stream:
+            head = stream.read(400).decode("utf-8", errors="replace")
+    except OSError:
+        return False
+    return GENERATED_MARKER in head
 
 # Characters of a differing line that emit --check shows: enough to recognise it, short enough
 # for one line of a CI log.
