@@ -16,7 +16,7 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
-from .emit import CSource, render
+from .emit import STATUS_CODES, CSource, render
 from .errors import BuildError
 
 # The warning set every generated file must pass (a superset of the one promised in the README).
@@ -53,6 +53,7 @@ def run_loop_context(csource: CSource, model) -> dict:
         header=csource.header_name, signature=signature, ctx_t=f"{p}_ctx_t",
         real_t=f"{p}_real_t", outputs_t=f"{p}_outputs_t", time=model.time,
         advance_function=f"{p}_advance", outputs_function=f"{p}_outputs",
+        clamped=dict((name, value) for name, value, _ in STATUS_CODES)["CLAMPED"],
         nx=model.nx, nu=len(model.inputs), ny=len(model.outputs),
         states=list(enumerate(s.name for s in model.states)),
         inputs=list(enumerate(u.name for u in model.inputs)),

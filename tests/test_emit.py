@@ -44,7 +44,10 @@ def test_field_comments_keep_unit_description_and_range_apart(axis):
     assert "    axis_real_t i;  /* [A]; range -10 .. 10 */\n" in header
     assert ("    axis_real_t V;  /* [V] armature voltage from the H-bridge; range -12 .. 12 */\n"
             in header)
-    assert "    axis_real_t t;  /* [s] advanced by DT every tick */\n" in header
+    assert ("    axis_real_t t;  /* [s] origin + ticks * DT, computed, never accumulated; set it "
+            "with axis_set_time() */\n" in header)
+    assert "    uint64_t tw_ticks;  /* ticks taken since the time origin (wraps to 0 after 2^64 " \
+        "ticks) */\n" in header
     assert "    axis_real_t torque;\n" in header  # no unit, description or range: no comment
 
 
