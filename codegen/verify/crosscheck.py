@@ -12,6 +12,7 @@ import numpy as np
 
 from .. import reference
 from ..build import build
+from ..discretize import Safeguards
 from ..methods import NEWTON_KINDS, Method
 from ..model import Model
 from ..pipeline import generate
@@ -80,14 +81,39 @@ def newton_allowance(model: Model, method, precision: str, steps: int, xs: np.nd
     return steps * tol * (np.asarray(newton_scales(model)) + reach)
 
 
+def safeguards_of(options: dict | None) -> Safeguards:
+    """The tick's safeguards among generation options (retry_depth, accept_error, clamp_states)."""
+    options = options or {}
+    return Safeguards(retry_depth=options.get("retry_depth", 0),
+                      accept_error=options.get("accept_error"),
+                      clamp_states=options.get("clamp_states", False))
+
+
+def generated_newton(model: Model, precision: str, options: dict | None = None):
+    """The generated C's Newton iteration as reference Newton options: its tolerance, scale,
+    iteration limit and refreshes (or full Newton), from the generation options."""
+    from ..discretize import DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_REFRESHES, NewtonSpec
+    from ..discretize import state_scales as newton_scales
+    from ..reference.steppers import EVERY_ITERATE, FROZEN, Newton
+
+    options = options or {}
+    tol = NewtonSpec(tolerance=options.get("newton_tol")).tolerance_for(precision)
+    return Newton(EVERY_ITERATE if options.get("full_newton") else FROZEN, tolerance=tol,
+                  max_iterations=options.get("newton_iterations", DEFAULT_NEWTON_ITERATIONS),
+                  scale=tuple(newton_scales(model)),
+                  refreshes=options.get("newton_refreshes", DEFAULT_NEWTON_REFRESHES))
+
+
 def cross_check(model: Model, method: Method, dt: float, substeps: int, precision: str,
                 ticks: int, inputs: np.ndarray | None = None,
                 accuracy: float = DEFAULT_ACCURACY, options: dict | None = None,
                 csource=None) -> CrossCheck:
     """Build the C and compare it tick by tick with the independent reference.
 
-    options: generation options of implicit methods (newton_iterations, newton_tol, solver);
-    csource: the already generated C for these arguments, if the caller has it.
+    options: generation options (newton_iterations, newton_tol, solver, newton_refreshes,
+    full_newton for implicit methods; retry_depth, accept_error, clamp_states for any): the
+    reference retries, accepts and clamps as the C does; csource: the already generated C for
+    these arguments, if the caller has it.
     """
     if csource is None:
         csource = generate(model, method, dt, substeps, precision, **(options or {}))
@@ -97,7 +123,15 @@ def cross_check(model: Model, method: Method, dt: float, substeps: int, precisio
     c_run = run_c(built, model, u)
     params = {p.name: float(as_precision(p.value, precision)) for p in model.parameters}
     x0 = as_precision([s.initial for s in model.states], precision)
-    ref = reference.run(model, method, dt, substeps, u, x0=x0, parameters=params)
+    guards = safeguards_of(options)
+    stepper = None
+    if guards.retry_depth and method.kind in NEWTON_KINDS:
+        # Retries follow failures, so the reference fails where the C does: its Newton, not
+        # the reference's full Newton to roundoff (the difference stays within the allowance).
+        stepper = reference.stepper(model, method, params,
+                                    newton=generated_newton(model, precision, options))
+    ref = reference.run(model, method, dt, substeps, u, x0=x0, parameters=params,
+                        stepper=stepper, safeguards=guards)
     exact = reference.high_accuracy(model, dt, u, x0=x0, parameters=params)
     n = min(c_run.completed, ref.completed)
     # Per state: the largest difference against that state's own bound (rounding of numbers of
