@@ -11,6 +11,11 @@ from . import __version__
 from .errors import BuildError, MethodError, TickwrightError
 
 PRECISION_CHOICE = click.Choice(["float", "double"])
+# The generator's defaults and limits (discretize.ir: DEFAULT_NEWTON_REFRESHES, MAX_RETRY_DEPTH),
+# repeated here so that the command line starts without sympy; tests/test_stiff.py checks that
+# they agree.
+DEFAULT_NEWTON_REFRESHES = 10
+MAX_RETRY_DEPTH = 16
 # Ticks of a replay given neither --inputs nor --steps: a short look at the model's start.
 DEFAULT_REPLAY_TICKS = 100
 
@@ -77,7 +82,31 @@ def step_options(fn):
 
 
 def implicit_options(fn):
-    """Generation options of the implicit methods (ignored by explicit ones)."""
+    """Generation options of the implicit methods (ignored by explicit ones), and the tick's
+    safeguards (every method)."""
+    fn = click.option("--clamp-states", "clamp_states", is_flag=True,
+                      help="Saturate every state that has a range to it after each tick; the "
+                           "tick then returns the CLAMPED status (the state left its "
+                           "envelope).")(fn)
+    fn = click.option("--accept-error", "accept_error", metavar="LIMIT", default=None,
+                      type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+                      help="Fail a step whose embedded error estimate exceeds LIMIT of a "
+                           "state's full scale (INACCURATE status, or a retry with "
+                           "--max-retry-depth). Methods with embedded weights only: bs3, dp5, "
+                           "ros2.")(fn)
+    fn = click.option("--max-retry-depth", "retry_depth", metavar="N", default=0,
+                      show_default=True, type=click.IntRange(min=0, max=MAX_RETRY_DEPTH),
+                      help="Retry a failed step as two halves, down to h/2^N; the tick keeps "
+                           "its length and its worst case grows to 2^(N+1)-1 attempts per "
+                           "substep (0: no retries).")(fn)
+    fn = click.option("--full-newton", "full_newton", is_flag=True,
+                      help="Newton's method proper for implicit methods: a new Jacobian and "
+                           "factorization after every iteration.")(fn)
+    fn = click.option("--newton-refreshes", "newton_refreshes", metavar="N",
+                      type=click.IntRange(min=0), default=DEFAULT_NEWTON_REFRESHES,
+                      show_default=True,
+                      help="Jacobian refreshes per step when Newton contracts too slowly "
+                           "(implicit methods; 0 keeps J frozen for the whole step).")(fn)
     fn = click.option("--linear-solve", "linear_solve", default="auto", show_default=True,
                       type=click.Choice(["auto", "elimination", "dense-lu"]),
                       help="Linear solves of implicit methods: straight-line sparse elimination, "
@@ -94,11 +123,21 @@ def implicit_options(fn):
     return fn
 
 
-def generation_options(method, newton_iterations, newton_tol, linear_solve) -> dict:
-    """The implicit-solver options for generate(); an explicit method takes none."""
-    if method.is_explicit:
-        return {}
-    return dict(newton_iterations=newton_iterations, newton_tol=newton_tol, solver=linear_solve)
+def generation_options(method, newton_iterations, newton_tol, linear_solve,
+                       newton_refreshes=DEFAULT_NEWTON_REFRESHES, full_newton=False,
+                       retry_depth=0, accept_error=None, clamp_states=False) -> dict:
+    """The options for generate(): the tick's safeguards for every method (only those given),
+    and the implicit-solver options, which an explicit method does not take."""
+    options = {key: value for key, value in (("retry_depth", retry_depth),
+                                             ("accept_error", accept_error),
+                                             ("clamp_states", clamp_states)) if value}
+    if method.is_explicit or method.kind == "exact":
+        return options
+    options.update(newton_iterations=newton_iterations, newton_tol=newton_tol,
+                   solver=linear_solve)
+    if newton_refreshes != DEFAULT_NEWTON_REFRESHES or full_newton:
+        options.update(newton_refreshes=newton_refreshes, full_newton=full_newton)
+    return options
 
 
 def resolve_method(method_id: str | None, tableau_file: Path | None):
@@ -168,13 +207,16 @@ def main(verbose):
 @units_option
 @guarded
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
-         error_estimate, newton_iterations, newton_tol, linear_solve):
+         error_estimate, newton_iterations, newton_tol, linear_solve, newton_refreshes,
+         full_newton, retry_depth, accept_error, clamp_states):
     """Write the C files for MODEL: <name>.h and <name>.c."""
     from .pipeline import generate
 
     model = load(model_path)
     method = resolve_method(method_id, tableau_file)
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     csource = generate(model, method, dt, substeps, precision, error_estimate=error_estimate,
                        **options)
     for path in csource.write(out_dir, force=force):
@@ -215,7 +257,8 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 @guarded
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, no_order,
           tolerance, as_json, error_estimate, plot_dir, plot_format, target_names, targets_dir,
-          newton_iterations, newton_tol, linear_solve):
+          newton_iterations, newton_tol, linear_solve, newton_refreshes, full_newton,
+          retry_depth, accept_error, clamp_states):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     With --target, also cross-compile it for a microcontroller, run it on the emulator, compare
@@ -239,7 +282,9 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, n
     if error_estimate and method.b_hat is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     report = run_check(model, method, dt, substeps, precisions, ticks, order=not no_order,
                        progress=say, accuracy=tolerance, options=options)
     estimates = ()
@@ -299,7 +344,8 @@ def targets_command(targets_dir, as_json):
 @units_option
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
-           out_path, newton_iterations, newton_tol, linear_solve):
+           out_path, newton_iterations, newton_tol, linear_solve, newton_refreshes, full_newton,
+           retry_depth, accept_error, clamp_states):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV."""
     from .inputs import held_defaults, read_input_log
     from .report.text import replay_done_line, replay_stop_message
@@ -311,7 +357,9 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
         inputs = read_input_log(inputs_path, model, steps)
     else:
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     result = run_replay(model, method, dt, inputs, substeps, precision, **options)
     result.save_csv(out_path)
     if not result.finished:
