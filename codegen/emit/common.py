@@ -429,11 +429,11 @@ def commit_statements(step: StepProgram, names: Names, may_have_failed: bool,
             (Line(f"{STATUS_VAR} = {names.status('NONFINITE')};"),)),)),))]
         if may_have_failed:
             check = [If(((ok, tuple(check)),))]
-    store = list(clamp or [])
+    store = [Line("uint32_t tw_clamped = 0U;"), *clamp] if clamp else []
     store += lines(*(f"tw_ctx->{s.name} = tw_x[{i}];" for i, s in enumerate(model.states)))
     store += lines(f"tw_ctx->{TICKS_FIELD} = tw_ctx->{TICKS_FIELD} + 1U;",
                    f"tw_ctx->{model.time} = tw_ctx->{ORIGIN_FIELD} + "
-                   f"(({names.real_t})tw_ctx->{TICKS_FIELD} * {names.macro('DT')});", *on_success)
+                   f"({ticks_as_real(names)} * {names.macro('DT')});", *on_success)
     if clamp:
         store.append(If((("tw_clamped != 0U",
                           (Line(f"{STATUS_VAR} = {names.status('CLAMPED')};"),)),)))
@@ -443,7 +443,29 @@ def commit_statements(step: StepProgram, names: Names, may_have_failed: bool,
 def tick_start(names: Names, model) -> str:
     """The declaration of tw_t0, the tick's start time, from the counter in the context."""
     return (f"const {names.real_t} tw_t0 = tw_ctx->{ORIGIN_FIELD} + "
-            f"(({names.real_t})tw_ctx->{TICKS_FIELD} * {names.macro('DT')});")
+            f"({ticks_as_real(names)} * {names.macro('DT')});")
+
+
+def ticks_as_real(names: Names, counter: str = f"tw_ctx->{TICKS_FIELD}") -> str:
+    """The call converting the tick counter to the working precision (ticks_function)."""
+    return f"{names.prefix}_ticks({counter})"
+
+
+def ticks_function(step, names: Names, printer: Printer, constants: list) -> dict:
+    """The tick counter as a real, from its two 32-bit halves.
+
+    A cast of the uint64_t itself calls a run-time routine on 32-bit cores (__aeabi_ul2f on
+    Arm), even with a floating-point unit; the halves convert in hardware. Exact up to 2^24 ticks
+    in float and 2^53 in double, like the cast; beyond 2^32 ticks two roundings instead of one.
+    """
+    two32 = coefficient(constants, names.macro("TWO_POW_32"), sp.Integer(2) ** 32, printer,
+                        "2^32, the weight of the counter's high half")
+    return dict(
+        doc="The tick counter in the working precision (see the header's time field).",
+        signature=f"static {names.real_t} {names.prefix}_ticks(const uint64_t tw_n)",
+        body=lines("const uint32_t tw_high = (uint32_t)(tw_n >> 32U);",
+                   "const uint32_t tw_low = (uint32_t)(tw_n & 0xFFFFFFFFU);",
+                   f"return (({names.real_t})tw_high * {two32}) + ({names.real_t})tw_low;"))
 
 
 def advance_body(step, names: Names, printer: Printer, constants: list, decl: list[str],
@@ -466,8 +488,6 @@ def advance_body(step, names: Names, printer: Printer, constants: list, decl: li
                  f"{names.status_t} {STATUS_VAR} = {ok};")
     if step_name:
         body += lines(tick_start(names, model), f"{names.real_t} tw_t = tw_t0;")
-    if clamp:
-        body.append(Line("uint32_t tw_clamped = 0U;"))
     body += [*lines("size_t tw_i;", "uint32_t tw_n;"), Blank()]
     body += lines(*(f"tw_x[{i}] = tw_ctx->{s.name};" for i, s in enumerate(model.states)))
     may_fail = inner.may_fail
@@ -508,15 +528,12 @@ def piece_body(step, names: Names, printer: Printer, constants: list, decl: list
     end = f"({names.macro('SUBSTEPS')} * {span})"
     body = lines(f"{real} tw_x[{nx}];", f"{real} tw_x0[{nx}];", *decl,
                  f"{names.status_t} {STATUS_VAR} = {ok};", tick_start(names, model),
-                 f"{real} tw_t = tw_t0;",
                  f"{real} tw_hs = {printer.literal(1)};  /* piece length / h: 2^-depth */",
                  "uint32_t tw_depth = 0U;",
                  f"uint32_t tw_span = {span};  /* shortest pieces per piece: 2^(RETRY_DEPTH - "
                  "depth) */",
                  "uint32_t tw_pos = 0U;  /* shortest pieces done in this tick */",
                  "uint32_t tw_taken = 0U;", "uint32_t tw_try;", "uint32_t tw_up;")
-    if clamp:
-        body.append(Line("uint32_t tw_clamped = 0U;"))
     body += [*lines("size_t tw_i;"), Blank()]
     body += lines(*(f"tw_x[{i}] = tw_ctx->{s.name};" for i, s in enumerate(model.states)))
     finite = VectorLoop(nx, (If((("isfinite(tw_x[tw_i]) == 0",
@@ -534,10 +551,12 @@ def piece_body(step, names: Names, printer: Printer, constants: list, decl: list
              *lines("tw_depth = tw_depth + 1U;", "tw_span = tw_span / 2U;",
                     f"tw_hs = tw_hs * {printer.literal(sp.Rational(1, 2))};",
                     f"{STATUS_VAR} = {ok};")]
-    attempt = [Line(f"tw_t = tw_t0 + (({real})tw_pos * {fine});"),
-               VectorLoop(nx, (Line("tw_x0[tw_i] = tw_x[tw_i];"),)),
+    inner.add(finite)  # with the last section: under the same check as the update
+    attempt = [Line(f"const {real} tw_t = tw_t0 + (({real})tw_pos * {fine});")]
+    if folded_per_attempt(step):
+        attempt.append(Line(f"{real} {step_error_variable(step)} = {printer.literal(0)};"))
+    attempt += [VectorLoop(nx, (Line("tw_x0[tw_i] = tw_x[tw_i];"),)),
                inner.node(ok_condition(names)),
-               If(((ok_condition(names), (finite,)),)),
                If(((ok_condition(names), tuple(taken)),
                    (f"tw_depth < {names.macro('RETRY_DEPTH')}",
                     (Comment("retry the piece as two halves"), *retry))),
@@ -643,6 +662,12 @@ def step_error_variable(step) -> str | None:
     return "tw_err_step" if step.error_weights and wanted else None
 
 
+def folded_per_attempt(step) -> bool:
+    """Whether a step's own estimate is kept for the whole attempt: with retries, when the tick's
+    largest is returned, it is folded in only once the piece is taken (piece_body)."""
+    return bool(step_error_variable(step)) and step.error_function and step.safeguards.pieces
+
+
 def error_estimate_lines(step, names: Names, printer: Printer, constants: list, slot: dict,
                          per_step: str | None = None,
                          stage_array: str = "tw_k") -> tuple[list, list[str]]:
@@ -652,8 +677,9 @@ def error_estimate_lines(step, names: Names, printer: Printer, constants: list, 
     solution and its embedded lower-order companion (HNW I, section II.4, from memory); err is
     the largest |e_i| / S_i over the states and the substeps of the tick, with S_i the state's
     full scale (max |range bound|, or 1 in the state's unit without a range). per_step: keep each
-    step's own largest value in this variable (reset at the step's start); without retries it is
-    folded into the tick's largest right away, with retries when the piece is taken.
+    step's own largest value in this variable (declared here, or for each attempt by piece_body);
+    without retries it is folded into the tick's largest right away, with retries when the piece
+    is taken.
     """
     model, up, nx = step.model, names.upper, names.macro("NX")
     weights = [coefficient(constants, f"{up}_ERR_W{i + 1}", 1 / error_scale(s), printer,
@@ -664,8 +690,8 @@ def error_estimate_lines(step, names: Names, printer: Printer, constants: list, 
     fabs = printer.expr(sp.Abs(sp.Symbol("tw_e"))).replace("(tw_e)", "")
     target = per_step or "tw_err_max"
     estimate = [Comment("embedded error estimate, as a fraction of each state's full scale")]
-    if per_step:
-        estimate.append(Line(f"{per_step} = {printer.literal(0)};"))
+    if per_step and not folded_per_attempt(step):
+        estimate.append(Line(f"{names.real_t} {per_step} = {printer.literal(0)};"))
     estimate.append(VectorLoop(nx, (
         Line(f"const {names.real_t} tw_e = {fabs}({terms}) * tw_err_weight[tw_i];"),
         If(((f"tw_e > {target}", (Line(f"{target} = tw_e;"),)),)))))
@@ -673,7 +699,6 @@ def error_estimate_lines(step, names: Names, printer: Printer, constants: list, 
     if step.error_function:
         decl.append(f"{names.real_t} tw_err_max = {printer.literal(0)};")
     if per_step:
-        decl.append(f"{names.real_t} {per_step} = {printer.literal(0)};")
         if step.error_function and not step.safeguards.pieces:
             estimate.append(If(((f"{per_step} > tw_err_max",
                                  (Line(f"tw_err_max = {per_step};"),)),)))

@@ -10,7 +10,7 @@ from ..discretize import StepProgram
 from .common import (accept_check, advance_body, base_context, coefficient,
                      error_estimate_functions, error_estimate_lines, grouped, outputs_function,
                      per_h, rates_function, reset_function, set_time_function,
-                     step_error_variable)
+                     step_error_variable, ticks_function)
 from .statements import Comment, Line, Sections, VectorLoop
 
 
@@ -70,6 +70,7 @@ def explicit_context(step: StepProgram, precision: str) -> dict:
     ctx["functions"] = [
         reset_function(step, names, printer),
         set_time_function(step, names),
+        ticks_function(step, names, printer, constants),
         rates_function(step, names, printer),
         *advance,
     ]

@@ -25,7 +25,8 @@ from ..methods import DIAGONALLY_IMPLICIT, EXACT, FULLY_IMPLICIT, LINEARLY_IMPLI
 from .common import (Names, accept_check, advance_body, base_context, block_lines, coefficient,
                      error_estimate_functions, error_estimate_lines, fail_on, free_names,
                      grouped, outputs_function, per_h, rates_function, reset_function,
-                     set_time_function, step_error_variable, sum_of_products, unpack_lines)
+                     set_time_function, step_error_variable, sum_of_products, ticks_function,
+                     unpack_lines)
 from .printer import FLOAT, Printer
 from .statements import (Blank, Comment, DenseFactor, DenseSolve, EliminationFactor,
                          EliminationSolve, EliminationStep, If, Line, Loop, LuNames, Sections,
@@ -296,15 +297,26 @@ def _newton_declarations(w: _Writer) -> list[str]:
     decl = [f"{w.real_t} tw_scale[{w.nx}];", f"{w.real_t} tw_err;", "uint32_t tw_it;",
             "uint32_t tw_done;"]
     if w.step.newton.monitored:
-        decl += [f"{w.real_t} tw_prev;", "uint32_t tw_fresh;", "uint32_t tw_refreshes;"]
+        decl += [f"{w.real_t} tw_prev;", "uint32_t tw_fresh;"]
     return decl
 
 
+REFRESH_BUDGET = "uint32_t tw_refreshes = 0U;  /* Jacobian refreshes in this step */"
+
+
+def _solves(step: ImplicitStep) -> int:
+    """Newton solves in one step: one per implicit stage, or one for a fully implicit step."""
+    if step.scheme == FULLY_IMPLICIT:
+        return 1
+    return sum(1 for stage in step.stages if stage.solve_index is not None)
+
+
 def _newton_start(w: _Writer) -> list:
-    """Statements at the start of a step that uses Newton: the scales, the refresh budget."""
+    """Statements at the start of a step that uses Newton: the scales, and the refresh budget
+    when several solves share it (a single solve declares it where it is used)."""
     body = _scale_lines(w)
-    if w.step.newton.monitored:
-        body.append(Line("tw_refreshes = 0U;  /* Jacobian refreshes in this step */"))
+    if w.step.newton.monitored and _solves(w.step) > 1:
+        body.append(Line(REFRESH_BUDGET))
     return body
 
 
@@ -340,6 +352,8 @@ def _newton_loop(w: _Writer, body: Sections, residual: list, size: int, z: str,
                   "tw_done = 0U;  /* 0: iterating, 1: converged, 2: diverged */")]
     if newton.monitored:
         start += lines(f"tw_prev = {w.zero};", "tw_fresh = 0U;")
+        if _solves(w.step) == 1:
+            start.append(Line(REFRESH_BUDGET))
     body.add(*start,
              Loop("tw_it", "0U", f"(tw_it < {w.up}_NEWTON_ITERATIONS) && (tw_done == 0U)",
                   (*residual, *_newton_test(w, size, z, per_state),
@@ -558,7 +572,8 @@ def implicit_context(step: ImplicitStep, precision: str) -> dict:
     ctx = base_context(step, precision, _kind_note(step, precision))
     w = _Writer(step, ctx, precision)
     model, names = step.model, w.names
-    functions = [reset_function(step, names, w.printer), set_time_function(step, names)]
+    functions = [reset_function(step, names, w.printer), set_time_function(step, names),
+                 ticks_function(step, names, w.printer, w.constants)]
     if step.scheme != EXACT:  # the exact step never evaluates f
         functions.append(rates_function(step, names, w.printer))
     newton_loop = step.scheme in (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT) and not step.linear
