@@ -25,6 +25,8 @@ _CATEGORY = {"ADD": "add", "SUB": "add", "NEG": "add", "MUL": "mul", "DIV": "div
 # 1/sqrt(x), one square root (and one division).
 _SQRT = sp.Function("TW_SQRT")
 _POWER = sp.Function("TW_POWER")
+# Work of a retried step in steps: the failed attempt plus its two halves (each a full step's).
+RETRY_COST = 3
 
 
 @dataclass(frozen=True)
@@ -118,14 +120,27 @@ def _rate_operations(model: Model) -> tuple[int, int]:
     return f_ops, j_ops
 
 
-def operations_per_step(model: Model, method, newton_iterations: float | None = None):
+def operations_per_step(model: Model, method, newton_iterations: float | None = None,
+                        refreshes: float = 0.0, retry_rate: float = 0.0):
     """(operations of one step, how they were found).
 
     Explicit tableaux: counted on the generated step program (cost.step_cost). Other kinds are
     estimated from the rate and Jacobian operation counts: an LU factorization costs 2/3 n^3, a
     solve 2 n^2 (common practice, no source), times the Newton iterations measured by the
-    numerical model (or 3 assumed when none were measured).
+    numerical model (or 3 assumed when none were measured). The allowance, measured over the
+    advice's run: each Jacobian refresh per step (implicit Runge-Kutta) costs its evaluations and
+    a factorization, and each retried step (a fraction retry_rate of the steps) costs a failed
+    attempt and its two halves, 3 steps' work.
     """
+    ops, note = _operations(model, method, newton_iterations, refreshes)
+    if retry_rate > 0:
+        ops = int(math.ceil(ops * (1 + RETRY_COST * retry_rate)))
+        note += f", + {retry_rate:.2%} of the steps retried"
+    return ops, note
+
+
+def _operations(model: Model, method, newton_iterations: float | None, refreshes: float):
+    """operations_per_step before the retry allowance."""
     kind = method.kind
     nx = model.nx
     if kind == EXPLICIT:
@@ -145,12 +160,16 @@ def operations_per_step(model: Model, method, newton_iterations: float | None = 
         ops = j_ops + lu(nx) + s * (f_ops + solve(nx) + 2 * s * nx)
         return ops, "estimated: Jacobian, one LU, one solve per stage"
     a = method.a
+    refreshed = f", + {refreshes:.2g} Jacobian refreshes per step" if refreshes > 0 else ""
     if kind == DIAGONALLY_IMPLICIT:
         diagonals = {a[i][i] for i in range(s) if a[i][i] != 0}
         implicit_stages = sum(1 for i in range(s) if a[i][i] != 0)
         ops = j_ops + len(diagonals) * lu(nx) + (s - implicit_stages) * f_ops + \
             implicit_stages * iterations * (f_ops + solve(nx) + 2 * s * nx) + 2 * s * nx
-        return ops, f"estimated: {iterations} Newton iteration(s) per stage"
+        ops += int(math.ceil(refreshes * (j_ops + lu(nx))))
+        return ops, f"estimated: {iterations} Newton iteration(s) per stage{refreshed}"
     n = s * nx
     ops = j_ops + lu(n) + iterations * (s * f_ops + solve(n) + 2 * s * n) + 2 * s * nx
-    return ops, f"estimated: {iterations} Newton iteration(s) on the {n} x {n} stage system"
+    ops += int(math.ceil(refreshes * (s * j_ops + lu(n))))  # a J per stage, one factorization
+    return ops, (f"estimated: {iterations} Newton iteration(s) on the {n} x {n} stage "
+                 f"system{refreshed}")
