@@ -85,9 +85,9 @@ def implicit_options(fn):
     """Generation options of the implicit methods (ignored by explicit ones), and the tick's
     safeguards (every method)."""
     fn = click.option("--clamp-states", "clamp_states", is_flag=True,
-                      help="Saturate every state that has a range to it after each tick; the "
-                           "tick then returns the CLAMPED status (the state left its "
-                           "envelope).")(fn)
+                      help="Saturate every state that has a range to it after each tick; a "
+                           "tick that did returns the CLAMPED status (it was taken, and the "
+                           "model left its envelope).")(fn)
     fn = click.option("--accept-error", "accept_error", metavar="LIMIT", default=None,
                       type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
                       help="Fail a step whose embedded error estimate exceeds LIMIT of a "
