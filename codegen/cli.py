@@ -202,7 +202,7 @@ def main(verbose):
 @click.option("--force", is_flag=True, help="Replace files even if tickwright did not write them.")
 @click.option("--error-estimate", is_flag=True,
               help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
-                   "local error estimate (methods with b_hat, such as bs3 and dp5).")
+                   "local error estimate (methods with b_hat: bs3, dp5, ros2).")
 @implicit_options
 @units_option
 @guarded

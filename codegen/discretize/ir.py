@@ -404,7 +404,7 @@ class Work:
     attempts: step attempts per tick (substeps, times 2^(depth + 1) - 1 with retries); the other
     fields count one attempt: rate evaluations f(t, x), Jacobian evaluations (one per stage
     block for a fully implicit refresh), df/dt evaluations, factorizations of the iteration
-    matrix and linear solves with it. Every loop of the generated advance function is bounded by
+    matrix, linear solves with it, and products with the exact step's matrices (zoh-exact). Every loop of the generated advance function is bounded by
     these numbers; none depends on the data.
     """
 
@@ -414,6 +414,7 @@ class Work:
     time_derivatives: int = 0
     factorizations: int = 0
     linear_solves: int = 0
+    propagations: int = 0
 
     def per_tick(self, field_name: str) -> int:
         return self.attempts * getattr(self, field_name)
@@ -423,7 +424,8 @@ class Work:
         parts = [(self.rate_evaluations, "rate evaluation"),
                  (self.jacobian_evaluations, "Jacobian evaluation"),
                  (self.time_derivatives, "df/dt evaluation"),
-                 (self.factorizations, "factorization"), (self.linear_solves, "linear solve")]
+                 (self.factorizations, "factorization"), (self.linear_solves, "linear solve"),
+                 (self.propagations, "product with the exact propagator")]
         shown = [(n, word) for n, word in parts if n] or [(0, "rate evaluation")]
         total = ", ".join(f"{self.attempts * n} {word}{'s' if self.attempts * n != 1 else ''}"
                           for n, word in shown)
@@ -440,7 +442,7 @@ def worst_case_work(step: StepProgram | ImplicitStep) -> Work:
     if isinstance(step, StepProgram):
         return Work(attempts, len(step.stages))
     if step.scheme not in (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT):
-        return Work(attempts, 0)  # the exact step: one matrix-vector product
+        return Work(attempts, 0, propagations=1)  # the exact step
     jac = 0 if step.prefactored else 1
     if step.scheme == LINEARLY_IMPLICIT:
         s = len(step.stages)

@@ -713,8 +713,9 @@ def error_estimate_functions(step: StepProgram, names: Names, body: list,
                  f"{names.real_t} *tw_err)")
     ctx["prototypes"].append(dict(
         doc=f"As {model.name}_advance, and on {names.status('OK')} also set *tw_err to the local "
-            "error estimate of the tick: max over states and substeps of |h sum_j (b_j - b_hat_j) "
-            "k_j| divided by the state's full scale (max |range bound|, or 1 without a range). "
+            "error estimate of the tick: max over states and the steps taken of |h sum_j (b_j - "
+            "b_hat_j) k_j| divided by the state's full scale (max |range bound|, or 1 without a "
+            "range). "
             "It scales like h^(embedded order + 1).",
         signature=signature))
     tick = f"{model.name}_tick"
