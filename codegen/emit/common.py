@@ -458,8 +458,7 @@ def ticks_function(step, names: Names, printer: Printer, constants: list) -> dic
     Arm), even with a floating-point unit; the halves convert in hardware. Exact up to 2^24 ticks
     in float and 2^53 in double, like the cast; beyond 2^32 ticks two roundings instead of one.
     """
-    two32 = coefficient(constants, names.macro("TWO_POW_32"), sp.Integer(2) ** 32, printer,
-                        "2^32, the weight of the counter's high half")
+    two32 = printer.literal(sp.Integer(2) ** 32)  # the weight of the high half, exact
     return dict(
         doc="The tick counter in the working precision (see the header's time field).",
         signature=f"static {names.real_t} {names.prefix}_ticks(const uint64_t tw_n)",
