@@ -339,7 +339,7 @@ def _newton_loop(w: _Writer, body: Sections, residual: list, size: int, z: str,
             _loop(f"{size}U", f"{z}[tw_i] = {z}[tw_i] - tw_r[tw_i];"),
             Line("tw_err = tw_prev;"))),))
         branches.append((
-            f"(tw_prev > {w.zero}) && (tw_err > ({w.up}_NEWTON_RATE * tw_prev)) && "
+            f"(tw_prev > {w.zero}) && (tw_err > ({w.up}_REFRESH_AT * tw_prev)) && "
             f"(tw_refreshes < {w.up}_NEWTON_REFRESHES)",
             (Comment("contracting too slowly: J at the iterate, refactor"), step_back, *refresh,
              *lines("tw_refreshes = tw_refreshes + 1U;", "tw_fresh = 1U;"))))
@@ -592,7 +592,7 @@ def implicit_context(step: ImplicitStep, precision: str) -> dict:
             comment=f"converged when max |correction| / scale <= {tol:.6g}"))
         if step.newton.monitored:
             w.constants.append(dict(
-                name=f"{w.up}_NEWTON_RATE",
+                name=f"{w.up}_REFRESH_AT",
                 value=w.printer.literal(sp.Rational(repr(NEWTON_REFRESH_RATE))),
                 comment="refresh J when a correction exceeds this share of the one before"))
     solver = None
