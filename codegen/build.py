@@ -18,7 +18,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from . import __version__
-from .emit import GENERATED_MARKER, CSource, comment_text, file_note, render
+from .emit import GENERATED_MARKER, STATUS_CODES, CSource, comment_text, file_note, render
 from .errors import BuildError, EmitError
 
 # The warning set every generated file must pass (a superset of the one promised in the README).
@@ -55,6 +55,7 @@ def run_loop_context(csource: CSource, model) -> dict:
         header=csource.header_name, signature=signature, ctx_t=f"{p}_ctx_t",
         real_t=f"{p}_real_t", outputs_t=f"{p}_outputs_t", time=model.time,
         advance_function=f"{p}_advance", outputs_function=f"{p}_outputs",
+        clamped=dict((name, value) for name, value, _ in STATUS_CODES)["CLAMPED"],
         nx=model.nx, nu=len(model.inputs) + len(model.tunable), ny=len(model.outputs),
         states=list(enumerate(s.name for s in model.states)),
         # The tunable parameters follow the inputs in each tick's row, so a run can change them

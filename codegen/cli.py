@@ -58,6 +58,11 @@ class OneLineGroup(click.Group):
 # A tick period, a tolerance or a margin: a positive finite number of seconds or a fraction.
 POSITIVE = FiniteFloatRange(min=0, min_open=True)
 PRECISION_CHOICE = click.Choice(["float", "double"])
+# The generator's defaults and limits (discretize.ir: DEFAULT_NEWTON_REFRESHES, MAX_RETRY_DEPTH),
+# repeated here so that the command line starts without sympy; tests/test_stiff.py checks that
+# they agree.
+DEFAULT_NEWTON_REFRESHES = 10
+MAX_RETRY_DEPTH = 16
 # Ticks of a replay given neither --inputs nor --steps: a short look at the model's start.
 DEFAULT_REPLAY_TICKS = 100
 # Ticks of a check's cross-check without --inputs: long enough for the input sweep to cover each
@@ -169,7 +174,31 @@ def step_options(fn):
 
 
 def implicit_options(fn):
-    """Generation options of the implicit methods (ignored by explicit ones)."""
+    """Generation options of the implicit methods (ignored by explicit ones), and the tick's
+    safeguards (every method)."""
+    fn = click.option("--clamp-states", "clamp_states", is_flag=True,
+                      help="Saturate every state that has a range to it after each tick; a "
+                           "tick that did returns the CLAMPED status (it was taken, and the "
+                           "model left its envelope).")(fn)
+    fn = click.option("--accept-error", "accept_error", metavar="LIMIT", default=None,
+                      type=click.FloatRange(min=0, max=1, min_open=True, max_open=True),
+                      help="Fail a step whose embedded error estimate exceeds LIMIT of a "
+                           "state's full scale (INACCURATE status, or a retry with "
+                           "--max-retry-depth). Methods with embedded weights only: bs3, dp5, "
+                           "ros2.")(fn)
+    fn = click.option("--max-retry-depth", "retry_depth", metavar="N", default=0,
+                      show_default=True, type=click.IntRange(min=0, max=MAX_RETRY_DEPTH),
+                      help="Retry a failed step as two halves, down to h/2^N; the tick keeps "
+                           "its length and its worst case grows to 2^(N+1)-1 attempts per "
+                           "substep (0: no retries).")(fn)
+    fn = click.option("--full-newton", "full_newton", is_flag=True,
+                      help="Newton's method proper for implicit methods: a new Jacobian and "
+                           "factorization after every iteration.")(fn)
+    fn = click.option("--newton-refreshes", "newton_refreshes", metavar="N",
+                      type=click.IntRange(min=0), default=DEFAULT_NEWTON_REFRESHES,
+                      show_default=True,
+                      help="Jacobian refreshes per step when Newton contracts too slowly "
+                           "(implicit methods; 0 keeps J frozen for the whole step).")(fn)
     fn = click.option("--linear-solve", "linear_solve", default="auto", show_default=True,
                       type=click.Choice(["auto", "elimination", "dense-lu"]),
                       help="Linear solves of implicit methods: straight-line sparse elimination, "
@@ -251,11 +280,21 @@ def precisions_for(precision: str, targets) -> tuple[str, ...]:
     return ("float", "double") if precision == "both" else (precision,)
 
 
-def generation_options(method, newton_iterations, newton_tol, linear_solve) -> dict:
-    """The implicit-solver options for generate(); an explicit method takes none."""
-    if method.is_explicit:
-        return {}
-    return dict(newton_iterations=newton_iterations, newton_tol=newton_tol, solver=linear_solve)
+def generation_options(method, newton_iterations, newton_tol, linear_solve,
+                       newton_refreshes=DEFAULT_NEWTON_REFRESHES, full_newton=False,
+                       retry_depth=0, accept_error=None, clamp_states=False) -> dict:
+    """The options for generate(): the tick's safeguards for every method (only those given),
+    and the implicit-solver options, which an explicit method does not take."""
+    options = {key: value for key, value in (("retry_depth", retry_depth),
+                                             ("accept_error", accept_error),
+                                             ("clamp_states", clamp_states)) if value}
+    if method.is_explicit or method.kind == "exact":
+        return options
+    options.update(newton_iterations=newton_iterations, newton_tol=newton_tol,
+                   solver=linear_solve)
+    if newton_refreshes != DEFAULT_NEWTON_REFRESHES or full_newton:
+        options.update(newton_refreshes=newton_refreshes, full_newton=full_newton)
+    return options
 
 
 def resolve_method(method_id: str | None, tableau_file: Path | None):
@@ -354,7 +393,7 @@ def main(verbose):
 @click.option("--force", is_flag=True, help="Replace files even if tickwright did not write them.")
 @click.option("--error-estimate", is_flag=True,
               help="Also generate <name>_advance_with_error(), which returns the embedded pair's "
-                   "local error estimate (methods with b_hat, such as bs3 and dp5).")
+                   "local error estimate (methods with b_hat: bs3, dp5, ros2).")
 @click.option("--build-files", is_flag=True,
               help="Also write CMakeLists.txt (a static library target) and <name>.mk (a Make "
                    "fragment) with the flags the checks use; one model per folder.")
@@ -369,7 +408,7 @@ def main(verbose):
 @guarded
 def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, force,
          error_estimate, build_files, check_only, as_json, newton_iterations, newton_tol,
-         linear_solve):
+         linear_solve, newton_refreshes, full_newton, retry_depth, accept_error, clamp_states):
     """Write the C files for MODEL: <name>.h and <name>.c.
 
     With --check, compare instead: exit 1 when a file in --out is missing or differs from what
@@ -387,7 +426,9 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
     method = resolve_method(method_id, tableau_file)
     if not check_only:
         check_writable(out_dir, EmitError, "choose a writable folder for --out")
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     gate_before_run(model, method, dt, substeps, model_path, force_run=True, warn_only=True)
     say(f"generate {model.name} ({model.nx} state{'' if model.nx == 1 else 's'}) with "
         f"{method.id}")
@@ -463,7 +504,8 @@ def emit(model_path, method_id, tableau_file, dt, substeps, precision, out_dir, 
 def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, inputs_path,
           resample, strict_ranges, set_pairs, force_run, no_order, tolerance, as_json,
           error_estimate, plot_dir, plot_format, target_names, targets_dir, newton_iterations,
-          newton_tol, linear_solve):
+          newton_tol, linear_solve, newton_refreshes, full_newton, retry_depth, accept_error,
+          clamp_states):
     """Build MODEL's C, cross-check it against the reference and measure its order.
 
     With --inputs, the cross-check and the accuracy check run on a recorded log of inputs. With
@@ -505,7 +547,9 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
     if error_estimate and method.b_hat is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); --error-estimate needs "
                           "an embedded pair such as bs3 or dp5")
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     report = run_check(model, method, dt, substeps, precisions, ticks, inputs,
                        order=not no_order, progress=say, accuracy=tolerance, options=options,
                        parameters=parameters, scenario=scenario, parameter_sources=sources,
@@ -570,7 +614,8 @@ def check(model_path, method_id, tableau_file, dt, substeps, precision, ticks, i
 @guarded
 def report(model_path, method_id, tableau_file, dt, substeps, precision, ticks, tolerance,
            target_names, targets_dir, no_advice, no_order, force_run, out_path, as_json,
-           newton_iterations, newton_tol, linear_solve):
+           newton_iterations, newton_tol, linear_solve, newton_refreshes, full_newton,
+           retry_depth, accept_error, clamp_states):
     """Write a review report of MODEL: one self-contained HTML page to sign off.
 
     The page holds the model with its equations, the method and tick with the stability
@@ -594,7 +639,9 @@ def report(model_path, method_id, tableau_file, dt, substeps, precision, ticks, 
     gate = gate_before_run(model, method, dt, substeps, model_path, force_run, with_limit=True)
     targets = [load_target(name, targets_dir) for name in target_names]
     precisions = precisions_for(precision, targets)
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     advice = None
     if not no_advice:
         from .advice import advise as run_advice, candidates
@@ -699,7 +746,8 @@ def targets_command(targets_dir, as_json, toolchain):
 @guarded
 def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_path, steps,
            out_path, resample, strict_ranges, set_pairs, force_run, as_json, newton_iterations,
-           newton_tol, linear_solve):
+           newton_tol, linear_solve, newton_refreshes, full_newton, retry_depth,
+           accept_error, clamp_states):
     """Run the compiled C of MODEL over a log of inputs and write the trajectory as CSV.
 
     Stops at once when dt is beyond the stability limit (unless --force-run).
@@ -721,7 +769,9 @@ def replay(model_path, method_id, tableau_file, dt, substeps, precision, inputs_
         inputs = held_defaults(model, steps or DEFAULT_REPLAY_TICKS)
     parameters = parameter_table(model, len(inputs), settings, columns, str(inputs_path))
     gate_before_run(with_values(model, settings), method, dt, substeps, model_path, force_run)
-    options = generation_options(method, newton_iterations, newton_tol, linear_solve)
+    options = generation_options(method, newton_iterations, newton_tol, linear_solve,
+                                 newton_refreshes, full_newton, retry_depth, accept_error,
+                                 clamp_states)
     result = run_replay(model, method, dt, inputs, substeps, precision, parameters=parameters,
                         **options)
     result.save_csv(out_path)

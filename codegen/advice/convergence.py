@@ -1,7 +1,8 @@
 """Newton convergence of an implicit Runge-Kutta method at a tick, over the envelope.
 
 The generated C of an implicit Runge-Kutta method solves its stage equations by simplified
-Newton (the Jacobian frozen at the start of the step), stops after at most
+Newton (the Jacobian frozen at the start of the step, refreshed at most
+discretize.DEFAULT_NEWTON_REFRESHES times when it contracts too slowly), stops after at most
 discretize.DEFAULT_NEWTON_ITERATIONS iterations and returns NO_CONVERGENCE when the last
 correction is still above the precision's tolerance (discretize.DEFAULT_NEWTON_TOLERANCE,
 relative to each state's Newton scale: its full scale plus |x|). A tick at which that happens
@@ -29,7 +30,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import reference
-from ..discretize import DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_TOLERANCE
+from ..discretize import (DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_REFRESHES,
+                          DEFAULT_NEWTON_TOLERANCE)
 from ..discretize.implicit import state_scales as newton_scales
 from ..methods import NEWTON_KINDS
 from ..model import Model
@@ -42,9 +44,11 @@ NEWTON_TICKS = 3
 
 
 def c_newton(model: Model, precision: str) -> Newton:
-    """The generated C's Newton test as reference Newton options (simplified, C's scale)."""
+    """The generated C's Newton test as reference Newton options (simplified with the default
+    Jacobian refreshes, C's scale)."""
     return Newton(FROZEN, tolerance=DEFAULT_NEWTON_TOLERANCE[precision],
-                  max_iterations=DEFAULT_NEWTON_ITERATIONS, scale=tuple(newton_scales(model)))
+                  max_iterations=DEFAULT_NEWTON_ITERATIONS, scale=tuple(newton_scales(model)),
+                  refreshes=DEFAULT_NEWTON_REFRESHES)
 
 
 @dataclass(frozen=True)

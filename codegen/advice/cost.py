@@ -47,6 +47,8 @@ LIBRARY_CALLS = frozenset({"sin", "cos", "tan", "asin", "acos", "atan", "atan2",
                            "tanh", "exp", "log", "floor", "ceil", "fmin", "fmax", "pow"})
 # sympy function class name -> C library name, as emit.printer maps them.
 _FUNCTION_NAMES = {"ceiling": "ceil", "Min": "fmin", "Max": "fmax", "Abs": "fabs"}
+# Work of a retried step in steps: the failed attempt plus its two halves (each a full step's).
+RETRY_COST = 3
 
 
 @dataclass(frozen=True)
@@ -345,12 +347,15 @@ def uses_newton(step) -> bool:
 
 
 def operations_per_step(model: Model, method, newton_iterations: float | None = None,
-                        dt: float = 1.0):
+                        dt: float = 1.0, refreshes: float = 0.0, retry_rate: float = 0.0):
     """(operations of one step, how they were found), counted on the simplified step at dt.
 
     The count does not depend on dt except through the structure of the step (which stays the same
     for any dt that the generator accepts); newton_iterations: measured iterations per solve
-    (rounded up), else ASSUMED_NEWTON_ITERATIONS.
+    (rounded up), else ASSUMED_NEWTON_ITERATIONS. The allowance, measured over the advice's run:
+    each Jacobian refresh per step (implicit Runge-Kutta) costs a Jacobian evaluation and a
+    factorization, and each retried step (a fraction retry_rate of the steps) costs a failed
+    attempt and its two halves, RETRY_COST steps' work.
     """
     from ..discretize import discretize
     from ..simplify import simplify
@@ -366,7 +371,15 @@ def operations_per_step(model: Model, method, newton_iterations: float | None = 
         nx, nu = model.nx, len(model.inputs)
         return 2 * nx * (nx + nu + 1), f"estimated: a dense propagator ({exc})"
     total = step_cost(step, iterations).total
-    if not uses_newton(step):
-        return total, "counted"
-    how = "measured" if newton_iterations else "assumed"
-    return total, f"counted with {iterations} Newton iteration(s) per solve ({how})"
+    note = "counted"
+    if uses_newton(step):
+        how = "measured" if newton_iterations else "assumed"
+        note = f"counted with {iterations} Newton iteration(s) per solve ({how})"
+        if refreshes > 0:
+            refresh = count_block(step.jacobian.block) + factor_cost(step.solve)
+            total += int(math.ceil(refreshes * refresh.total))
+            note += f", + {refreshes:.2g} Jacobian refreshes per step"
+    if retry_rate > 0:
+        total = int(math.ceil(total * (1 + RETRY_COST * retry_rate)))
+        note += f", + {retry_rate:.2%} of the steps retried"
+    return total, note

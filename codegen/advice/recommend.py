@@ -161,6 +161,10 @@ class Accuracy:
     local_by: str
     completed: bool
     newton_iterations: float | None = None
+    # Per step of the run, measured: Jacobian refreshes of the C's Newton, and steps retried
+    # (the cost allowance of cost.operations_per_step).
+    refreshes: float = 0.0
+    retry_rate: float = 0.0
 
 
 # Ticks at which the step-doubling local error is sampled (it costs three extra steps each).
@@ -210,7 +214,8 @@ def accuracy(model: Model, method, dt: float, horizon: float, scales=None,
                 two = step(k * dt + dt / 2, half, u[k], dt / 2).x
                 local_error = max(local_error, float(np.max(np.abs(one - two) / scales) * factor))
     iterations = coarse.newton_iterations / n if coarse.newton_iterations else None
-    return Accuracy(dt, n, global_error, local_error, local_by, True, iterations)
+    return Accuracy(dt, n, global_error, local_error, local_by, True, iterations,
+                    coarse.refreshes / n, coarse.retried / n)
 
 
 # ---------------------------------------------------------------------------------------------
@@ -677,9 +682,12 @@ def _advise_method(setting: Setting, m, damped, margin) -> MethodAdvice:
     except TickwrightError as exc:
         note = str(exc)
     shown = found or last
-    iterations = shown.short.newton_iterations if shown and shown.short else None
+    short = shown.short if shown else None
+    iterations = short.newton_iterations if short else None
     try:
-        ops, cost_note = operations_per_step(model, m, iterations)
+        ops, cost_note = operations_per_step(model, m, iterations,
+                                             short.refreshes if short else 0.0,
+                                             short.retry_rate if short else 0.0)
     except TickwrightError as exc:  # pragma: no cover - every kind has an estimate
         ops, cost_note = 0, str(exc)
     report = analysis.analyse(m)

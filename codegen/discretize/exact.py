@@ -14,7 +14,7 @@ from ..errors import ModelError, located
 from ..model import Model
 from ..methods import EXACT
 from .explicit import exact_dt, output_block, rate_block
-from .ir import ImplicitStep, NewtonSpec
+from .ir import ImplicitStep, NewtonSpec, Safeguards
 from .linear_solve import GENERATION_DIGITS, _mp
 
 def linear_parts(model: Model, method_id: str = "zoh-exact"):
@@ -75,7 +75,8 @@ def zoh_propagator(model: Model, h, method=None):
     return ad, bd, ed
 
 
-def discretize_exact(model: Model, method, dt, substeps: int = 1) -> ImplicitStep:
+def discretize_exact(model: Model, method, dt, substeps: int = 1,
+                     safeguards: Safeguards = Safeguards()) -> ImplicitStep:
     """Model + exact method + dt -> ImplicitStep holding the propagator of one substep h."""
     from ..errors import MethodError
 
@@ -85,4 +86,4 @@ def discretize_exact(model: Model, method, dt, substeps: int = 1) -> ImplicitSte
     h = dt / substeps
     return ImplicitStep(model=model, method=method, dt=dt, substeps=substeps, scheme=EXACT,
                         rates=rate_block(model), outputs=output_block(model), newton=NewtonSpec(),
-                        propagator=zoh_propagator(model, h, method))
+                        propagator=zoh_propagator(model, h, method), safeguards=safeguards)

@@ -19,7 +19,7 @@ import sympy as sp
 from ..errors import MethodError
 from ..methods import Tableau
 from ..model import Model
-from .ir import Block, Stage, StepProgram
+from .ir import Block, Safeguards, Stage, StepProgram
 
 
 def exact_dt(dt) -> sp.Rational:
@@ -58,18 +58,24 @@ def needed_stages(method: Tableau, with_error: bool) -> list[int]:
 
 
 def discretize_explicit(model: Model, method: Tableau, dt, substeps: int = 1,
-                        error_estimate: bool = False) -> StepProgram:
-    """Build the explicit step program for one substep h = dt / substeps."""
+                        error_estimate: bool = False,
+                        safeguards: Safeguards = Safeguards()) -> StepProgram:
+    """Build the explicit step program for one substep h = dt / substeps.
+
+    error_estimate: return the embedded estimate to the caller (--error-estimate); the embedded
+    weights are carried for it and for safeguards.accept_error.
+    """
     if not method.is_explicit:
         raise MethodError(f"{method.id}: {method.kind} tableaux need the implicit step generator")
     if not isinstance(substeps, int) or substeps < 1:
         raise MethodError(f"--substeps: must be a whole number >= 1, got {substeps}")
-    if error_estimate and method.b_hat is None:
+    if (error_estimate or safeguards.accept_error is not None) and method.b_hat is None:
         raise MethodError(f"{method.id}: has no embedded weights (b_hat); the error estimate needs "
                           "an embedded pair such as bs3 or dp5")
+    estimated = error_estimate or safeguards.accept_error is not None
     dt = exact_dt(dt)
     h = dt / substeps
-    keep = needed_stages(method, error_estimate)
+    keep = needed_stages(method, estimated)
     stages = tuple(
         Stage(index=i, c=method.c[i], time_offset=method.c[i] * h,
               terms=tuple((j, h * method.a[i][j]) for j in range(i)
@@ -77,9 +83,10 @@ def discretize_explicit(model: Model, method: Tableau, dt, substeps: int = 1,
         for i in keep)
     weights = tuple((j, h * method.b[j]) for j in keep if method.b[j] != 0)
     error_weights = ()
-    if error_estimate:
+    if estimated:
         error_weights = tuple((j, h * (method.b[j] - method.b_hat[j])) for j in keep
                               if method.b[j] != method.b_hat[j])
     return StepProgram(model=model, method=method, dt=dt, substeps=substeps,
                        rates=rate_block(model), outputs=output_block(model), stages=stages,
-                       weights=weights, error_weights=error_weights)
+                       weights=weights, error_weights=error_weights, safeguards=safeguards,
+                       error_function=error_estimate)

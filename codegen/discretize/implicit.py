@@ -3,7 +3,8 @@
 Two schemes share the ImplicitStep representation (with the exact zero-order hold, exact.py):
 
 - implicit Runge-Kutta (diagonally or fully implicit tableaux): stage values found by a simplified
-  Newton iteration with the Jacobian J = df/dx frozen at the start of the step; diagonally implicit
+  Newton iteration with the Jacobian J = df/dx frozen at the start of the step (refreshed at the
+  iterate when it contracts too slowly, or at every iterate for full Newton); diagonally implicit
   methods solve stage by stage with the n x n matrix I - h a_ii J, fully implicit methods solve all
   stages at once with the (s n) x (s n) matrix I - h A (x) J;
 - linearly implicit (Rosenbrock): one linear solve with I - gamma h J per stage, no iteration.
@@ -34,8 +35,9 @@ from ..errors import MethodError
 from ..methods import DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT, NEWTON_KINDS
 from ..model import Model
 from .explicit import exact_dt, output_block, rate_block
-from .ir import (DEFAULT_NEWTON_ITERATIONS, DEFAULT_STATE_SCALE, INVERSE, CoupledStage,
-                 DiagonalStage, ImplicitStep, NewtonSpec, RosenbrockStage)
+from .ir import (DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_REFRESHES, DEFAULT_STATE_SCALE,
+                 INVERSE, CoupledStage, DiagonalStage, ImplicitStep, NewtonSpec, RosenbrockStage,
+                 Safeguards)
 from .derivatives import jacobian, time_derivative
 from .linear_solve import G, plan_solve
 
@@ -47,33 +49,49 @@ def state_scales(model: Model) -> tuple[float, ...]:
 
 def discretize_implicit(model: Model, method, dt, substeps: int = 1,
                         newton_iterations: int = DEFAULT_NEWTON_ITERATIONS,
-                        newton_tol: float | None = None, solver: str = "auto") -> ImplicitStep:
-    """Model + implicit Runge-Kutta or Rosenbrock method + dt -> ImplicitStep (one substep h)."""
+                        newton_tol: float | None = None, solver: str = "auto",
+                        newton_refreshes: int = DEFAULT_NEWTON_REFRESHES,
+                        full_newton: bool = False, error_estimate: bool = False,
+                        safeguards: Safeguards = Safeguards()) -> ImplicitStep:
+    """Model + implicit Runge-Kutta or Rosenbrock method + dt -> ImplicitStep (one substep h).
+
+    error_estimate: return a Rosenbrock method's embedded estimate (b_hat) to the caller;
+    safeguards: the tick's retries, accepted error (which also needs the embedded weights) and
+    clamping. A retried piece scales h by a power of two at run
+    time, so with retries no iteration matrix is inverted at generation time.
+    """
     if not isinstance(substeps, int) or substeps < 1:
         raise MethodError(f"--substeps: must be a whole number >= 1, got {substeps}")
     dt = exact_dt(dt)
     h = dt / substeps
     newton = NewtonSpec(max_iterations=newton_iterations, tolerance=newton_tol,
-                        scale=state_scales(model))
+                        scale=state_scales(model), refreshes=newton_refreshes, full=full_newton)
     common = dict(model=model, method=method, dt=dt, substeps=substeps, rates=rate_block(model),
-                  outputs=output_block(model), newton=newton)
+                  outputs=output_block(model), newton=newton, safeguards=safeguards)
     where = f"{model.source}: --method {method.id}"
     jac = jacobian(model)
     s = method.stages
     weights = tuple((j, h * method.b[j]) for j in range(s) if method.b[j] != 0)
+    inverse = not safeguards.pieces
     if method.kind == LINEARLY_IMPLICIT:
         dfdt = time_derivative(model)
         gamma_h = method.gamma * h
+        error_weights = ()
+        if error_estimate or safeguards.accept_error is not None:
+            error_weights = tuple((j, h * (method.b[j] - method.b_hat[j])) for j in range(s)
+                                  if method.b[j] != method.b_hat[j])
         return ImplicitStep(scheme=LINEARLY_IMPLICIT, jacobian=jac,
-                            solve=plan_solve(jac, [[G]], (gamma_h,), solver, where),
+                            solve=plan_solve(jac, [[G]], (gamma_h,), solver, where, inverse),
                             stages=rosenbrock_stages(method, h, dfdt is not None),
-                            weights=weights, gamma_h=gamma_h, dfdt=dfdt, **common)
+                            weights=weights, gamma_h=gamma_h, dfdt=dfdt,
+                            error_weights=error_weights, error_function=error_estimate,
+                            **common)
     if method.kind not in NEWTON_KINDS:
         raise MethodError(f"{method.id}: {method.kind} methods use another step generator")
     if method.kind == DIAGONALLY_IMPLICIT:
         diagonals = tuple(dict.fromkeys(h * method.a[i][i] for i in range(s)
                                         if method.a[i][i] != 0))
-        solve = plan_solve(jac, [[G]], diagonals, solver, where)
+        solve = plan_solve(jac, [[G]], diagonals, solver, where, inverse)
         return ImplicitStep(scheme=DIAGONALLY_IMPLICIT, jacobian=jac, solve=solve,
                             stages=diagonal_stages(method, h, diagonals, solve.kind != INVERSE),
                             weights=weights, **common)
@@ -82,7 +100,7 @@ def discretize_implicit(model: Model, method, dt, substeps: int = 1,
                                             if method.a[p][q] != 0))
                    for p in range(s))
     solve = plan_solve(jac, [[h * method.a[p][q] for q in range(s)] for p in range(s)], (),
-                       solver, where)
+                       solver, where, inverse)
     z_weights = stage_weights(method)
     return ImplicitStep(scheme=FULLY_IMPLICIT, jacobian=jac, solve=solve, stages=stages,
                         weights=() if z_weights else weights, z_weights=z_weights, **common)

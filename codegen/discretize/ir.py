@@ -56,11 +56,55 @@ class Stage:
     terms: tuple[tuple[int, sp.Expr], ...]
 
 
+# Deepest halving of a failed step: pieces of h / 2^16. The tick's position is counted in pieces
+# of that size in a uint32_t, and the worst case grows as 2^(depth + 1) attempts per substep, so a
+# deeper limit would only make the documented worst case meaningless.
+MAX_RETRY_DEPTH = 16
+
+
+@dataclass(frozen=True)
+class Safeguards:
+    """What one tick may do beyond one attempt per substep, all off by default.
+
+    retry_depth: a step that fails (no convergence, singular matrix, non-finite value, or an
+    error estimate above accept_error) is retried as two halves, each of which may be halved again,
+    down to pieces of h / 2^retry_depth; 0 means no retry (one attempt per substep).
+    accept_error: the largest embedded error estimate a step may have, as a fraction of each
+    state's full scale (None: not checked); needs a method with embedded weights (b_hat).
+    clamp_states: saturate every state with a declared range to it after each tick.
+    """
+
+    retry_depth: int = 0
+    accept_error: float | None = None
+    clamp_states: bool = False
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.retry_depth, int) or isinstance(self.retry_depth, bool) \
+                or not 0 <= self.retry_depth <= MAX_RETRY_DEPTH:
+            raise MethodError(f"--max-retry-depth: must be a whole number from 0 to "
+                              f"{MAX_RETRY_DEPTH}, got {self.retry_depth!r}")
+        if self.accept_error is not None and not (0.0 < float(self.accept_error) < 1.0):
+            raise MethodError(f"--accept-error: must be a fraction of each state's scale between "
+                              f"0 and 1, got {self.accept_error!r}")
+
+    @property
+    def pieces(self) -> bool:
+        """Whether the tick runs as a loop over pieces that can fail and be retried."""
+        return self.retry_depth > 0
+
+    def attempts(self, substeps: int) -> int:
+        """Step attempts per tick, at most: each substep is a binary tree of depth retry_depth
+        whose inner nodes failed once and whose 2^depth leaves were tried once each."""
+        return substeps * (2 ** (self.retry_depth + 1) - 1)
+
+
 @dataclass(frozen=True)
 class StepProgram:
     """The discretized step: what one substep of length h computes, before simplification.
 
-    h = dt / substeps; weights are (j, h*b_j) for the stages that contribute.
+    h = dt / substeps; weights are (j, h*b_j) for the stages that contribute; error_weights
+    (j, h*(b_j - b_hat_j)) when an embedded estimate is computed, and error_function when it is
+    also returned to the caller (--error-estimate).
     """
 
     model: Model
@@ -72,6 +116,8 @@ class StepProgram:
     stages: tuple[Stage, ...]
     weights: tuple[tuple[int, sp.Expr], ...]
     error_weights: tuple[tuple[int, sp.Expr], ...] = ()
+    safeguards: Safeguards = Safeguards()
+    error_function: bool = False
 
     @property
     def h(self) -> sp.Rational:
@@ -94,6 +140,18 @@ DEFAULT_NEWTON_ITERATIONS = 20
 DEFAULT_NEWTON_TOLERANCE = {"float": 2.0 ** -16, "double": 2.0 ** -40}
 # Scale of a state without a range in the Newton test (an absolute floor in the state's unit).
 DEFAULT_STATE_SCALE = 1.0
+# Default Jacobian refreshes per step when the simplified Newton iteration contracts too slowly.
+# Robertson's kinetics at dt = 0.1 (tests/test_stiff.py) needs 9 with backward Euler and Radau
+# IIA, 8 with SDIRK2, in its first step (measured on the generated C), where J at the initial
+# state has a zero species and cannot see the stiffness (Newton then halves its overshoot once
+# per iteration); half the iteration limit leaves room for that and keeps the worst case of a
+# step at 11 Jacobians and factorizations.
+DEFAULT_NEWTON_REFRESHES = 10
+# Contraction rate above which the frozen Jacobian is refreshed: max |correction| must shrink at
+# least 4-fold per iteration, or 20 iterations gain fewer than 40 bits (the double tolerance 2^-40
+# from a first correction of order 1) and the limit is reached first. Hairer & Wanner (IV.8) stop
+# at rates near 1; refreshing is cheaper here than a failed tick.
+NEWTON_REFRESH_RATE = 0.25
 
 ELIMINATION = "elimination"
 DENSE_LU = "dense-lu"
@@ -107,21 +165,45 @@ class NewtonSpec:
 
     tolerance None means the precision's default (DEFAULT_NEWTON_TOLERANCE). scale_i is
     scale[i] + |x_i| with scale[i] the largest magnitude of the state's range (or
-    DEFAULT_STATE_SCALE).
+    DEFAULT_STATE_SCALE). J is frozen at the start of the step; when a correction is larger than
+    NEWTON_REFRESH_RATE times the one before, J is re-evaluated at the current iterate (at the one
+    before when the iteration diverged from a stale J) and the matrix refactored, at most
+    refreshes times per step (0: always frozen); full re-evaluates it after every iteration
+    (Newton's method proper).
+
+    References
+    ----------
+    HW IV.8: simplified Newton, its contraction rate and when to stop (from memory).
     """
 
     max_iterations: int = DEFAULT_NEWTON_ITERATIONS
     tolerance: float | None = None
     scale: tuple[float, ...] = ()
+    refreshes: int = DEFAULT_NEWTON_REFRESHES
+    full: bool = False
 
     def __post_init__(self) -> None:
         if not isinstance(self.max_iterations, int) or isinstance(self.max_iterations, bool) \
                 or self.max_iterations < 1:
             raise MethodError(f"--newton-iterations: must be a whole number >= 1, got "
                               f"{self.max_iterations!r}")
+        if not isinstance(self.refreshes, int) or isinstance(self.refreshes, bool) \
+                or self.refreshes < 0:
+            raise MethodError(f"--newton-refreshes: must be a whole number >= 0, got "
+                              f"{self.refreshes!r}")
         if self.tolerance is not None and not (0.0 < float(self.tolerance) < 1.0):
             raise MethodError(f"--newton-tol: must be a relative tolerance between 0 and 1, got "
                               f"{self.tolerance!r}")
+
+    @property
+    def monitored(self) -> bool:
+        """Simplified Newton that refreshes J when it contracts too slowly (not full Newton)."""
+        return self.refreshes > 0 and not self.full
+
+    @property
+    def refreshing(self) -> bool:
+        """Whether J is ever re-evaluated inside a step (monitored or full Newton)."""
+        return self.full or self.refreshes > 0
 
     def tolerance_for(self, precision: str) -> float:
         return float(self.tolerance) if self.tolerance is not None \
@@ -270,6 +352,9 @@ class ImplicitStep:
     z_weights: fully implicit with A invertible only: (i, d_i) for the non-zero d_i of
     d = b^T A^-1, and x+ = x + sum_i d_i Z_i replaces the update with weights.
     gamma_h: linearly implicit only: gamma*h, the scale of J in its iteration matrix.
+    error_weights: linearly implicit with b_hat only, when an estimate is asked for: (j, h*(b_j -
+    b_hat_j)) for the non-zero differences; error_function: the estimate is also returned to the
+    caller (--error-estimate).
     For the exact scheme, propagator holds (Ad, Bd, ed) with Bd's columns per input and ed the
     response to the model's constant term.
     """
@@ -290,6 +375,9 @@ class ImplicitStep:
     gamma_h: sp.Expr | None = None
     dfdt: Block | None = None
     propagator: tuple | None = None
+    error_weights: tuple[tuple[int, sp.Expr], ...] = ()
+    safeguards: Safeguards = Safeguards()
+    error_function: bool = False
 
     @property
     def h(self) -> sp.Rational:
@@ -308,3 +396,73 @@ class ImplicitStep:
         return self.method.stages
 
 
+
+
+@dataclass(frozen=True)
+class Work:
+    """The most work one tick can do, per step attempt and over the whole tick.
+
+    attempts: step attempts per tick (substeps, times 2^(depth + 1) - 1 with retries); the other
+    fields count one attempt: rate evaluations f(t, x), Jacobian evaluations (one per stage
+    block for a fully implicit refresh), df/dt evaluations, factorizations of the iteration
+    matrix, linear solves with it, and products with the exact step's matrices (zoh-exact). Every loop of the generated advance function is bounded by
+    these numbers; none depends on the data.
+    """
+
+    attempts: int
+    rate_evaluations: int
+    jacobian_evaluations: int = 0
+    time_derivatives: int = 0
+    factorizations: int = 0
+    linear_solves: int = 0
+    propagations: int = 0
+
+    def per_tick(self, field_name: str) -> int:
+        return self.attempts * getattr(self, field_name)
+
+    def note(self) -> str:
+        """The bound in words, for the generated preamble."""
+        parts = [(self.rate_evaluations, "rate evaluation"),
+                 (self.jacobian_evaluations, "Jacobian evaluation"),
+                 (self.time_derivatives, "df/dt evaluation"),
+                 (self.factorizations, "factorization"), (self.linear_solves, "linear solve"),
+                 (self.propagations, "product with the exact propagator")]
+        shown = [(n, word) for n, word in parts if n] or [(0, "rate evaluation")]
+        total = ", ".join(f"{self.attempts * n} {word}{'s' if self.attempts * n != 1 else ''}"
+                          for n, word in shown)
+        each = ", ".join(str(n) for n, _ in shown)
+        return (f"Worst-case work per tick: {total} ({self.attempts} step attempt"
+                f"{'s' if self.attempts != 1 else ''} of at most {each}).")
+
+
+def worst_case_work(step: StepProgram | ImplicitStep) -> Work:
+    """The worst-case work of one tick of the generated advance function (see Work)."""
+    from ..methods import DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT
+
+    attempts = step.safeguards.attempts(step.substeps)
+    if isinstance(step, StepProgram):
+        return Work(attempts, len(step.stages))
+    if step.scheme not in (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT, LINEARLY_IMPLICIT):
+        return Work(attempts, 0, propagations=1)  # the exact step
+    jac = 0 if step.prefactored else 1
+    if step.scheme == LINEARLY_IMPLICIT:
+        s = len(step.stages)
+        return Work(attempts, s, jac, int(step.dfdt is not None), jac, s)
+    newton = step.newton
+    n = newton.max_iterations
+    if step.scheme == DIAGONALLY_IMPLICIT:
+        implicit = sum(1 for stage in step.stages if stage.solve_index is not None)
+        explicit = len(step.stages) - implicit
+        factors = sum(1 for stage in step.stages if stage.refactor)
+        if step.linear:
+            return Work(attempts, len(step.stages), jac, 0, factors, implicit)
+        # A refresh follows an iteration that did not converge, so at most n - 1 per solve.
+        extra = implicit * (n - 1) if newton.full else newton.refreshes
+        return Work(attempts, explicit + implicit * n, 1 + extra, 0, factors + extra,
+                    implicit * n)
+    s = len(step.stages)
+    final = 0 if step.z_weights else len(step.weights)  # f at the stages for the update
+    if step.linear:
+        return Work(attempts, s + final, jac, 0, jac, 1)
+    refreshes = (n - 1) if newton.full else newton.refreshes
+    return Work(attempts, s * n + final, 1 + s * refreshes, 0, 1 + refreshes, n)

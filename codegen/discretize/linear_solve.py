@@ -106,17 +106,20 @@ def _inverse(m: mpmath.matrix, where: str) -> tuple[tuple[sp.Float, ...], ...]:
 
 
 def plan_solve(jac: Jacobian, coefficients, diagonals=(), solver: str = "auto",
-               where: str = "") -> LinearSolve:
+               where: str = "", allow_inverse: bool = True) -> LinearSolve:
     """Choose and lay out the linear solve for M = I - (coefficients (x) J).
 
     diagonals: the run-time values of G (stage-by-stage blocks); used to pre-invert M when J is
-    constant.
+    constant; allow_inverse False factors M at run time even then (h changes at run time).
     """
     if solver not in SOLVERS:
         raise MethodError(f"--linear-solve: must be one of {', '.join(SOLVERS)}, got {solver!r}")
     entries = matrix_entries(jac, coefficients)
     size = jac.nx * len(coefficients)
-    if jac.values is not None and solver == "auto" and size <= MAX_PREINVERTED_SIZE:
+    # With J = 0 (rates free of the state) M = I at every h and for every solver choice: its
+    # inverse is the identity, and a run-time factor would have no Jacobian to read.
+    if not jac.pattern or (jac.values is not None and solver == "auto"
+                           and size <= MAX_PREINVERTED_SIZE and allow_inverse):
         with mpmath.workdps(GENERATION_DIGITS):
             if diagonals:
                 inverses = tuple(_inverse(_mp_matrix(entries, size, jac.values, _mp(g)), where)

@@ -196,9 +196,13 @@ ROSENBROCK_METHODS: dict[str, dict] = {
         name="linearly implicit Euler", order=1, gamma="1", alpha=[[0]], coupling=[[0]], b=[1],
         time=["1"],
         source=cite("HW", "section IV.7")),
+    # The embedded first-order solution y_hat = y + h k1 (Verwer et al. 1999, from memory): in
+    # Hairer & Wanner's form b_hat (I - coupling)^-1 = (1, 0) as well, so b_hat = (1, 0) here and
+    # the estimate h sum (b_j - b_hat_j) k_j is h (k1 + k2) / 2.
     "ros2": dict(
         name="ROS2", order=2, gamma="1 + 1/sqrt(2)",
         alpha=[[0, 0], [1, 0]], coupling=[[0, 0], [-2, 0]], b=["3/2", "1/2"],
+        b_hat=[1, 0], embedded_order=1,
         time=["1 + 1/sqrt(2)", "-(1 + 1/sqrt(2))"],
         source=cite("Verwer")),
 }

@@ -7,8 +7,8 @@
 """
 
 from .numeric import jacobian_function, numeric, output_function, rate_function
-from .trajectory import Trajectory, high_accuracy, run
+from .trajectory import TickTaker, Trajectory, high_accuracy, run
 from .steppers import stepper
 
-__all__ = ["Trajectory", "high_accuracy", "jacobian_function", "numeric", "output_function",
-           "rate_function", "run", "stepper"]
+__all__ = ["TickTaker", "Trajectory", "high_accuracy", "jacobian_function", "numeric",
+           "output_function", "rate_function", "run", "stepper"]

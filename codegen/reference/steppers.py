@@ -17,6 +17,9 @@ Newton's method comes in two variants of the one implementation (Newton options)
 FULL_NEWTON re-evaluates J at every iterate and converges quadratically to a few units of
 roundoff (the reference the C is checked against); SIMPLIFIED_NEWTON freezes J at the start of
 the step, as the C does, so its iteration counts estimate the C's (the advice's cost estimate).
+With refreshes, the frozen J is re-evaluated (one block per stage) when a correction is larger
+than a set share of the one before, as the generated C does by default: written here from the
+rule, not from the C.
 
 References
 ----------
@@ -33,6 +36,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from ..discretize.ir import DEFAULT_NEWTON_REFRESHES, NEWTON_REFRESH_RATE
 from ..errors import MethodError
 from ..methods import EXACT, EXPLICIT, LINEARLY_IMPLICIT, NEWTON_KINDS, LinearlyImplicit, Tableau
 from ..model import Model
@@ -50,13 +54,18 @@ class Newton:
     Converged when max |correction of Z| <= tolerance * max(|y0|, |Z|); with scale (one floor
     per state, in the state's unit) the test is the generated C's instead: max over stages and
     states of |correction_i| / (scale_i + |y0_i|) <= tolerance. A step that does not converge
-    within max_iterations ends in NaN (the run then reports it as not completed).
+    within max_iterations ends in NaN (the run then reports it as not completed). refreshes
+    (FROZEN only): at most this many re-evaluations of J per step, each when a correction is
+    larger than rate times the one before (after stepping back to the iterate before when it
+    grew and J was not just evaluated there).
     """
 
     jacobian: str
     tolerance: float
     max_iterations: int
     scale: tuple[float, ...] = ()
+    refreshes: int = 0
+    rate: float = NEWTON_REFRESH_RATE
 
     def __post_init__(self) -> None:
         if self.jacobian not in (EVERY_ITERATE, FROZEN):
@@ -66,19 +75,23 @@ class Newton:
 # The reference: a few units of double roundoff, reachable because full Newton converges
 # quadratically; 50 iterations before it gives up (the tick then counts as not completed).
 FULL_NEWTON = Newton(EVERY_ITERATE, tolerance=1e-14, max_iterations=50)
-# The C's iteration: J frozen, linear convergence, so stop near the C's own double tolerance
-# (2^-40 = 9.1e-13) instead of at roundoff, which would count iterations the C never makes.
-SIMPLIFIED_NEWTON = Newton(FROZEN, tolerance=1e-12, max_iterations=50)
+# The C's iteration: J frozen (refreshed when it contracts too slowly, as the C does by
+# default), linear convergence, so stop near the C's own double tolerance (2^-40 = 9.1e-13)
+# instead of at roundoff, which would count iterations the C never makes.
+SIMPLIFIED_NEWTON = Newton(FROZEN, tolerance=1e-12, max_iterations=50,
+                           refreshes=DEFAULT_NEWTON_REFRESHES)
 
 
 @dataclass(frozen=True)
 class Step:
     """One step's result: the new state x (nx), the embedded error estimate
-    h sum_j (b_j - b_hat_j) k_j (nx, None without b_hat) and the Newton iterations used."""
+    h sum_j (b_j - b_hat_j) k_j (nx, None without b_hat), the Newton iterations used and the
+    Jacobian refreshes made."""
 
     x: np.ndarray
     error: np.ndarray | None = None
     iterations: int = 0
+    refreshes: int = 0
 
 
 def _floats(values) -> np.ndarray | None:
@@ -89,8 +102,8 @@ def _matrix(rows) -> np.ndarray:
     return np.array([[float(v) for v in row] for row in rows])
 
 
-def _failed(n: int, iterations: int = 0) -> Step:
-    return Step(np.full(n, np.nan), None, iterations)
+def _failed(n: int, iterations: int = 0, refreshes: int = 0) -> Step:
+    return Step(np.full(n, np.nan), None, iterations, refreshes)
 
 
 def explicit_step(f, a, b, c, t, x, u, h, b_hat=None) -> Step:
@@ -122,7 +135,7 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
 
     newton.jacobian EVERY_ITERATE builds I - h [a_ij J(Y_j)] at every iterate; FROZEN inverts
     I - h A (x) J(t, y0) once per step (small systems: one inverse is cheaper than repeated
-    solves).
+    solves), and again with J at the iterate's stages on each of newton.refreshes.
     """
     f = rate_function(model, parameters, scalar)
     jac = jacobian_function(model, parameters, scalar)
@@ -145,11 +158,19 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
     def rates(t, x, u, z, h):
         return np.array([f(t + c[i] * h, x + z[i], u) for i in range(s)])
 
+    def newton_matrix(t, x, u, z, h):
+        """I - h [a_ij J(Y_j)]: one J per stage, at the stage values x + z_j."""
+        big = eye.copy()
+        for j in range(s):
+            big[:, j * n:(j + 1) * n] -= h * kron(a[:, j:j + 1], jac(t + c[j] * h, x + z[j], u))
+        return big
+
     def step(t, x, u, h):
         z = np.zeros((s, n))
         # The C's test divides each correction by its state's floor plus |y0| (every stage).
         weights = np.tile(1.0 / (floors + np.abs(x)), s) if floors.size else None
         x_size = 0.0 if weights is not None else float(np.abs(x).max())
+        refreshes, left, previous, fresh = 0, newton.refreshes, 0.0, False
         if frozen:
             j0 = jac(t, x, u)
             if not np.all(np.isfinite(j0)):
@@ -164,29 +185,39 @@ def implicit_stepper(model: Model, tableau: Tableau, parameters=None,
             if frozen:
                 dz = -(w @ g)
             else:
-                big = eye.copy()
-                for j in range(s):
-                    big[:, j * n:(j + 1) * n] -= h * kron(a[:, j:j + 1],
-                                                          jac(t + c[j] * h, x + z[j], u))
                 try:
-                    dz = np.linalg.solve(big, -g)
+                    dz = np.linalg.solve(newton_matrix(t, x, u, z, h), -g)
                 except np.linalg.LinAlgError:
-                    return _failed(n, iteration)
+                    return _failed(n, iteration, refreshes)
             size = np.abs(dz)
             correction = float(size.max())
             if not math.isfinite(correction):
-                return _failed(n, iteration)
+                return _failed(n, iteration, refreshes)
             z = z + dz.reshape(s, n)
             if weights is not None:
-                converged = float((size * weights).max()) <= newton.tolerance
+                measure = float((size * weights).max())
+                converged = measure <= newton.tolerance
             else:
+                measure = correction
                 converged = correction <= newton.tolerance * max(
                     x_size, float(np.abs(z).max()), tiny)
             if converged:
                 fs = rates(t, x, u, z, h)
                 error = None if b_hat is None else h * ((b - b_hat) @ fs)
-                return Step(x + h * (b @ fs), error, iteration)
-        return _failed(n, newton.max_iterations)
+                return Step(x + h * (b @ fs), error, iteration, refreshes)
+            if frozen and left > 0 and previous > 0.0 and measure > newton.rate * previous:
+                if measure >= previous and not fresh:  # grew from a stale J: step back first
+                    z = z - dz.reshape(s, n)
+                    measure = previous
+                try:
+                    w = np.linalg.inv(newton_matrix(t, x, u, z, h))
+                except np.linalg.LinAlgError:
+                    return _failed(n, iteration, refreshes)
+                left, refreshes, fresh = left - 1, refreshes + 1, True
+            else:
+                fresh = False
+            previous = measure
+        return _failed(n, newton.max_iterations, refreshes)
 
     return step
 

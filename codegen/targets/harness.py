@@ -14,7 +14,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import build as host_build
-from ..emit import CSource, comment_text
+from ..emit import STATUS_CODES, CSource, comment_text
 from ..emit.printer import DOUBLE, FLOAT
 from ..errors import TickwrightError
 from .spec import Target
@@ -113,6 +113,7 @@ def harness_context(csource: CSource, model, target: Target, rows) -> dict:
                   "Not part of the firmware: it prints every state as bits after every tick."],
         header=csource.header_name, ctx_t=f"{p}_ctx_t", real_t=f"{p}_real_t",
         reset=f"{p}_reset", advance=f"{p}_advance",
+        clamped=dict((name, value) for name, value, _ in STATUS_CODES)["CLAMPED"],
         bits_t="uint64_t" if precision == DOUBLE else "uint32_t", wide=precision == DOUBLE,
         fields=_fields(model), inputs=[u.name for u in model.inputs],
         rows=[[_c_literal(v, precision) for v in row] for row in rows], ticks=len(rows),

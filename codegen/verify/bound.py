@@ -724,10 +724,13 @@ def _split_lu(a: np.ndarray):
     return lower, upper
 
 
-def tick_bounds(step, precision: str, ts, xs, us, tunables: dict) -> np.ndarray:
+def tick_bounds(step, precision: str, ts, xs, us, tunables: dict,
+                reference_newton_stop: bool = False) -> np.ndarray:
     """(ticks, nx): the bound on |C - reference| after each tick, both started from the C's state
     before the tick: SAFETY times (the C's running bound in its precision, Newton stop included,
-    plus the reference's own running bound in double)."""
+    plus the reference's own running bound in double, with the C's Newton stop too when the
+    reference iterates as the C does: reference_newton_stop)."""
     c_part = StepBound(step, precision, precision, ts, xs, us, tunables, True).tick()
-    ref_part = StepBound(step, precision, "double", ts, xs, us, tunables, False).tick()
+    ref_part = StepBound(step, precision, "double", ts, xs, us, tunables,
+                         reference_newton_stop).tick()
     return SAFETY * (c_part + ref_part)

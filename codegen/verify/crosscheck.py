@@ -19,7 +19,8 @@ import numpy as np
 
 from .. import reference
 from ..build import build
-from ..methods import Method
+from ..discretize import Safeguards
+from ..methods import NEWTON_KINDS, Method
 from ..model import Model
 from ..pipeline import generate
 from ..run import as_precision, run_built, status_name, trajectory
@@ -73,18 +74,20 @@ def tunable_values(built, model: Model) -> dict[str, float]:
 
 
 def shadow_steps(model: Model, method, dt: float, substeps: int, c_run, inputs,
-                 parameters: dict) -> np.ndarray:
-    """(ticks, nx): the reference's tick from the C's state and time before each tick."""
-    step = reference.stepper(model, method, parameters)
-    h = dt / substeps
+                 parameters: dict, guards: Safeguards | None = None, stepper=None):
+    """The reference's tick from the C's state and time before each tick, with the C's
+    safeguards: ((ticks, nx) states, (ticks,) attempts: the steps tried in each tick)."""
+    stepper = stepper or reference.stepper(model, method, parameters)
+    taker = reference.TickTaker(model, stepper, dt, substeps, guards or Safeguards())
     out = np.full((c_run.completed, model.nx), np.nan)
-    with np.errstate(all="ignore"):
-        for k in range(c_run.completed):
-            x, t0 = c_run.xs[k], c_run.ts[k]
-            for m in range(substeps):
-                x = step(t0 + m * h, x, inputs[k], h).x
+    attempts = np.full(c_run.completed, float(substeps))
+    for k in range(c_run.completed):
+        before = taker.tally.steps + taker.tally.retried
+        x = taker.tick(c_run.ts[k], c_run.xs[k], inputs[k])
+        if x is not None:
             out[k] = x
-    return out
+        attempts[k] = max(float(substeps), taker.tally.steps + taker.tally.retried - before)
+    return out, attempts
 
 
 def observed_ratios(diff: np.ndarray, bounds: np.ndarray) -> np.ndarray:
@@ -95,15 +98,40 @@ def observed_ratios(diff: np.ndarray, bounds: np.ndarray) -> np.ndarray:
     return np.where(np.isfinite(ratio), ratio, np.inf)
 
 
+def safeguards_of(options: dict | None) -> Safeguards:
+    """The tick's safeguards among generation options (retry_depth, accept_error, clamp_states)."""
+    options = options or {}
+    return Safeguards(retry_depth=options.get("retry_depth", 0),
+                      accept_error=options.get("accept_error"),
+                      clamp_states=options.get("clamp_states", False))
+
+
+def generated_newton(model: Model, precision: str, options: dict | None = None):
+    """The generated C's Newton iteration as reference Newton options: its tolerance, scale,
+    iteration limit and refreshes (or full Newton), from the generation options."""
+    from ..discretize import DEFAULT_NEWTON_ITERATIONS, DEFAULT_NEWTON_REFRESHES, NewtonSpec
+    from ..discretize import state_scales as newton_scales
+    from ..reference.steppers import EVERY_ITERATE, FROZEN, Newton
+
+    options = options or {}
+    tol = NewtonSpec(tolerance=options.get("newton_tol")).tolerance_for(precision)
+    return Newton(EVERY_ITERATE if options.get("full_newton") else FROZEN, tolerance=tol,
+                  max_iterations=options.get("newton_iterations", DEFAULT_NEWTON_ITERATIONS),
+                  scale=tuple(newton_scales(model)),
+                  refreshes=options.get("newton_refreshes", DEFAULT_NEWTON_REFRESHES))
+
+
 def cross_check(model: Model, method: Method, dt: float, substeps: int, precision: str,
                 ticks: int, inputs: np.ndarray | None = None,
                 accuracy: float = DEFAULT_ACCURACY, options: dict | None = None,
                 csource=None, parameters: np.ndarray | None = None) -> CrossCheck:
     """Build the C, run it, and compare every tick with the reference's tick from the C's state.
 
-    options: generation options of implicit methods (newton_iterations, newton_tol, solver);
-    csource: the already generated C for these arguments, if the caller has it; parameters:
-    (ticks, len(model.tunable)) values of the tunable parameters per tick, or None (the model's).
+    options: generation options (newton_iterations, newton_tol, solver, newton_refreshes,
+    full_newton for implicit methods; retry_depth, accept_error, clamp_states for any): the
+    reference retries, accepts and clamps as the C does; csource: the already generated C for
+    these arguments, if the caller has it; parameters: (ticks, len(model.tunable)) values of the
+    tunable parameters per tick, or None (the model's).
     """
     from ..discretize import discretize
     from ..simplify import simplify
@@ -130,11 +158,23 @@ def cross_check(model: Model, method: Method, dt: float, substeps: int, precisio
         ref_u = np.hstack([u, per_tick])
         params = {p.name: params[p.name] for p in ref_model.parameters}
         tunables = {p.name: per_tick[:n, j] for j, p in enumerate(model.tunable)}
-    shadow = shadow_steps(ref_model, method, dt, substeps, c_run, ref_u, params)
+    guards = safeguards_of(options)
+    stepper = None
+    same_newton = bool(guards.retry_depth and method.kind in NEWTON_KINDS)
+    if same_newton:
+        # Retries follow failures, so the reference must fail where the C does: its Newton,
+        # with the C's tolerance and refreshes, not the reference's full Newton to roundoff.
+        stepper = reference.stepper(ref_model, method, params,
+                                    newton=generated_newton(model, precision, options))
+    shadow, attempts = shadow_steps(ref_model, method, dt, substeps, c_run, ref_u, params,
+                                    guards, stepper)
     diff = np.abs(c_run.xs[1:n + 1] - shadow)
     step = simplify(discretize(model, method, dt, substeps, **options))
-    bounds = tick_bounds(step, precision, c_run.ts[:n], c_run.xs[:n], u[:n], tunables) \
-        if n else np.zeros((0, model.nx))
+    bounds = tick_bounds(step, precision, c_run.ts[:n], c_run.xs[:n], u[:n], tunables,
+                         reference_newton_stop=same_newton) if n else np.zeros((0, model.nx))
+    # A retried tick is several pieces, each with about a step's rounding: the bound of the
+    # tick times the pieces per substep (1 without retries).
+    bounds = bounds * (attempts / substeps)[:, None]
     ratios = observed_ratios(diff, bounds)
     per_state = ratios.max(axis=0) if n else np.zeros(model.nx)
     worst = int(np.argmax(per_state))
