@@ -11,7 +11,8 @@ from __future__ import annotations
 import pytest
 import sympy as sp
 
-from codegen.advice.cost import OperationCount, count_expr, factor_cost, solve_cost, step_cost
+from codegen.advice.cost import (OperationCount, count_block, count_expr, factor_cost, solve_cost,
+                                 step_cost)
 from codegen.discretize import DENSE_LU, discretize
 from codegen.emit import CSource, emit
 from codegen.errors import CheckError, ModelError
@@ -20,7 +21,7 @@ from codegen.model import Input, Parameter, State, define, load_model
 from codegen.simplify import simplify
 from codegen.verify.opcount import count_c
 
-from conftest import DEMO_MODELS
+from conftest import DEMO_MODELS, EXAMPLES
 
 # Ticks per example: short enough for every explicit method to be stable (as in test_verify.py).
 EXAMPLE_DT = {"heater": 0.5, "axis": 1e-4, "battery": 1.0}
@@ -45,6 +46,81 @@ def test_ir_count_equals_the_count_of_the_generated_c(model_path, method_id, pre
         counted = step_cost(step, iterations)
         assert counted == count_c(csource, iterations), (iterations, counted)
         assert counted.total > 0
+
+
+# One method of every kind with each safeguard and Newton option; the count is that of the
+# nominal tick (no retry, no clamp, every estimate accepted, no refresh asked for by the monitor).
+OPTION_CASES = [
+    ("rk4", dict(retry_depth=3)), ("euler", dict(clamp_states=True)),
+    ("bs3", dict(accept_error=1e-3)), ("dp5", dict(accept_error=1e-4, retry_depth=2)),
+    ("bs3", dict(error_estimate=True, retry_depth=1)),
+    ("sdirk2", dict(retry_depth=2)), ("sdirk3", dict(full_newton=True)),
+    ("backward-euler", dict(clamp_states=True, newton_refreshes=0)),
+    ("sdirk2", dict(full_newton=True, retry_depth=1, solver="dense-lu")),
+    ("radau-iia3", dict(retry_depth=3)), ("gauss2", dict(full_newton=True)),
+    ("radau-iia2", dict(clamp_states=True, retry_depth=1, full_newton=True)),
+    ("lobatto-iiic2", dict(newton_refreshes=0)),
+    ("ros2", dict(accept_error=5e-2)), ("ros2", dict(retry_depth=4, clamp_states=True)),
+    ("ros2", dict(error_estimate=True, accept_error=1e-2, retry_depth=2)),
+]
+
+
+@pytest.mark.parametrize("precision", ["float", "double"])
+@pytest.mark.parametrize("method_id, options", OPTION_CASES,
+                         ids=[f"{m}-{'-'.join(o)}" for m, o in OPTION_CASES])
+@pytest.mark.parametrize("model_path", DEMO_MODELS, ids=lambda p: p.stem)
+def test_counts_agree_with_every_safeguard_and_newton_option(model_path, method_id, options,
+                                                             precision):
+    model = load_model(model_path)
+    step = simplify(discretize(model, builtin(method_id), EXAMPLE_DT[model.name], 2, **options))
+    csource = emit(step, precision)
+    for iterations in (1, 2, 5):
+        counted = step_cost(step, iterations)
+        assert counted == count_c(csource, iterations), (iterations, counted)
+
+
+def test_the_exact_step_with_clamped_states_counts_the_same(tmp_path):
+    battery = load_model(EXAMPLES / "battery.toml")
+    plain = simplify(discretize(battery, builtin("zoh-exact"), 1.0, 2))
+    clamped = simplify(discretize(battery, builtin("zoh-exact"), 1.0, 2, clamp_states=True))
+    # Saturating a state compares and assigns: no floating operation on either path.
+    assert step_cost(clamped) == count_c(emit(clamped, "float")) == step_cost(plain)
+
+
+def test_retries_scale_every_h_product_by_the_piece(axis):
+    # RK4 on the axis with retries: every coefficient proportional to h is multiplied by the
+    # piece's scale where it is used: 3 stage coefficients and 4 weights for each of the 3
+    # states, and 3 stage times: 24 products more per substep (hand count of the C below); the
+    # time of a piece, t0 + (position * shortest piece), costs what t0 + (steps * h) did.
+    plain = simplify(discretize(axis, builtin("rk4"), 2e-4, 2))
+    pieces = simplify(discretize(axis, builtin("rk4"), 2e-4, 2, retry_depth=3))
+    text = emit(pieces, "float").text("axis.c")
+    assert text.count(" * tw_hs)") == 3 + 3 + 4  # stage sums, stage times, weights
+    extra = OperationCount(mul=2 * 24)
+    assert count_c(emit(pieces, "float")) == count_c(emit(plain, "float")) + extra
+    assert step_cost(pieces) == step_cost(plain) + extra
+
+
+@pytest.mark.parametrize("iterations", [1, 2, 3, 6])
+def test_the_newton_monitor_and_full_newton_cost_what_the_c_says(axis, iterations):
+    # Backward Euler on the axis, 2 substeps of one Newton solve each. The monitor compares each
+    # correction with REFRESH_AT times the one before from the second iteration on, but not on
+    # the iteration that converges: max(n - 2, 0) products per solve. Full Newton evaluates J at
+    # the iterate (its stage time t + c h one addition) and refactors after every iteration but
+    # the last: n - 1 times per solve.
+    def built(**options):
+        step = simplify(discretize(axis, builtin("backward-euler"), 1e-3, 2, **options))
+        return step, count_c(emit(step, "double"), iterations)
+
+    frozen_step, frozen = built(newton_refreshes=0)
+    _, monitored = built()
+    full_step, full = built(full_newton=True)
+    n = iterations
+    assert monitored == frozen + OperationCount(mul=2 * max(n - 2, 0))
+    jacobian = count_block(full_step.jacobian.block)
+    refresh = jacobian + OperationCount(add=1) + factor_cost(full_step.solve)
+    assert full == frozen + refresh.scaled(2 * (n - 1))
+    assert step_cost(full_step, n) == full and step_cost(frozen_step, n) == frozen
 
 
 @pytest.mark.parametrize("solver", ["elimination", "dense-lu"])
@@ -97,10 +173,12 @@ def test_constant_coefficients_are_multiplications_not_divisions():
 def test_the_demo_tick_performs_four_divisions(axis):
     # RK4 on the axis: 4 rate evaluations, each with one division by the tunable J and one tanh;
     # per evaluation 8 products (3 + 4 + 1) and 4 additions; stage sums 3 x 3 x (1 mul, 1 add),
-    # 3 stage times, update 3 x (4 mul, 4 add), the time update (1 mul, 1 add), the new time
-    # (1 add).
+    # 3 stage times, update 3 x (4 mul, 4 add), the substep's time t0 + (1 * h) (1 mul, 1 add);
+    # the tick's start time and its new time, each origin + (ticks * DT) with the counter
+    # converted as (high * 2^32) + low (2 mul, 2 add each).
     step = simplify(discretize(axis, builtin("rk4"), 2e-4))
-    expected = OperationCount(add=4 * 4 + 9 + 3 + 12 + 2, mul=4 * 8 + 9 + 12 + 1, div=4, call=4)
+    expected = OperationCount(add=4 * 4 + 9 + 3 + 12 + 1 + 2 * 2, mul=4 * 8 + 9 + 12 + 1 + 2 * 2,
+                              div=4, call=4)
     assert step_cost(step) == expected
     assert count_c(emit(step, "float")) == expected
 
@@ -185,12 +263,83 @@ def toy(source: str = TOY_SOURCE) -> CSource:
 def test_the_c_counter_matches_a_hand_count(iterations):
     # Per substep (2): toy_f inlined: a negation, one product (2.0F * TOY_K is folded), sqrtf, a
     # division, a subtraction of a literal; the loop over 2 states: 2 products, 2 additions; the
-    # Newton loop: a division and (the costlier branch) a product per iteration. The last loop
-    # runs tw_n times (0, then 1): one addition, one expf. After the loop: one addition.
+    # Newton loop: a division and a product per iteration (its test compares floating values:
+    # undecided, so false, the nominal path). The last loop runs tw_n times (0, then 1): one
+    # addition, one expf. After the loop: one addition.
     n = iterations
     expected = OperationCount(add=2 * (2 + 2) + 1 + 1, mul=2 * (1 + 2 + n), div=2 * (1 + n),
                               sqrt=2, call=1)
     assert count_c(toy(), n) == expected
+
+
+NOMINAL_SOURCE = """#include "toy.h"
+#define TOY_NEWTON_ITERATIONS 20U
+#define TOY_NEWTON_TOL (1e-06F)
+static toy_real_t toy_ticks(const uint64_t tw_n)
+{
+    const uint32_t tw_high = (uint32_t)(tw_n >> 32U);
+    const uint32_t tw_low = (uint32_t)(tw_n & 0xFFFFFFFFU);
+    return ((toy_real_t)tw_high * 4.2949673e+09F) + (toy_real_t)tw_low;
+}
+toy_status_t toy_advance(toy_ctx_t *tw_ctx)
+{
+    toy_real_t tw_x = tw_ctx->a;
+    toy_real_t tw_err;
+    toy_real_t tw_prev;
+    toy_status_t tw_status = TOY_OK;
+    uint32_t tw_pos = 0U;
+    uint32_t tw_try;
+    uint32_t tw_it;
+    uint32_t tw_done;
+
+    for (tw_try = 0U; (tw_try < 7U) && (tw_pos < 2U) && (tw_status == TOY_OK); ++tw_try) {
+        tw_done = 0U;
+        tw_prev = 0.0F;
+        for (tw_it = 0U; (tw_it < TOY_NEWTON_ITERATIONS) && (tw_done == 0U); ++tw_it) {
+            tw_err = fabsf(tw_x - tw_ctx->b);
+            tw_x = tw_x * 0.5F;
+            if (tw_err <= TOY_NEWTON_TOL) {
+                tw_done = 1U;
+            } else if ((tw_prev > 0.0F) && (tw_err > (0.25F * tw_prev))) {
+                tw_x = expf(tw_x);
+            } else {
+                tw_prev = tw_err;
+            }
+        }
+        if (tw_done != 1U) {
+            tw_status = TOY_BAD;
+        }
+        if (tw_status == TOY_OK) {
+            tw_pos = tw_pos + 1U;
+        }
+    }
+    if (tw_status == TOY_OK) {
+        tw_ctx->a = tw_x;
+        tw_ctx->t = toy_ticks(5U) * 2.0F;
+    }
+    return tw_status;
+}
+"""
+
+
+@pytest.mark.parametrize("iterations", [1, 2, 3, 7])
+def test_the_c_counter_follows_the_nominal_path(iterations):
+    # Two attempts (the position advances once per attempt that ends OK, the status stays OK),
+    # each a Newton loop that converges on its n-th iteration: per iteration one subtraction
+    # and one product; the second test reads tw_prev, 0 on the first iteration (no product),
+    # then the last correction: one product more on iterations 2 .. n-1, and the contraction
+    # test is undecided, so false (no expf). After: the counter's conversion (one product, one
+    # addition) and the product with 2.
+    n = iterations
+    expected = OperationCount(add=2 * n + 1, mul=2 * (n + max(n - 2, 0)) + 2)
+    assert count_c(toy(NOMINAL_SOURCE), n) == expected
+    # The tolerance read anywhere but in the test of a Newton loop is refused.
+    outside = NOMINAL_SOURCE.replace("tw_status == TOY_OK) {\n        tw_ctx->a",
+                                     "tw_x <= TOY_NEWTON_TOL) {\n        tw_ctx->a")
+    assert outside != NOMINAL_SOURCE
+    with pytest.raises(CheckError) as info:
+        count_c(toy(outside), n)
+    assert "Newton tolerance" in str(info.value) and "\n" not in str(info.value)
 
 
 def test_the_c_counter_sees_a_planted_operation_and_refuses_what_it_cannot_read(axis):

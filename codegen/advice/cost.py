@@ -31,7 +31,7 @@ from dataclasses import asdict, dataclass
 
 import sympy as sp
 
-from ..discretize import DENSE_LU, INVERSE, Block, ImplicitStep, LinearSolve, StepProgram
+from ..discretize import DENSE_LU, INVERSE, Block, G, ImplicitStep, LinearSolve, StepProgram
 from ..emit.printer import MAX_EXPANDED_POWER
 from ..emit.structure import printed_product, printed_terms
 from ..errors import TickwrightError
@@ -169,32 +169,51 @@ def count_block(block: Block) -> OperationCount:
                 [a.expr for a in block.temporaries] + [e for _, e in block.results])
 
 
-def _combination(terms: int, nx: int, plus_base: bool = True) -> OperationCount:
+def _combination(terms: int, nx: int, plus_base: bool = True,
+                 scaled: bool = False) -> OperationCount:
     """base + ((c1 * v1) + ... + (cn * vn)) for every state: n products, n additions (n - 1
-    without the base)."""
+    without the base); scaled: each coefficient is h-proportional and multiplied by the piece's
+    scale first ((c1 * tw_hs) * v1), one more product per term."""
     if terms == 0:
         return NONE
-    return OperationCount(mul=terms, add=terms if plus_base else terms - 1).scaled(nx)
+    per_term = 2 if scaled else 1
+    return OperationCount(mul=per_term * terms, add=terms if plus_base else terms - 1).scaled(nx)
 
 
-def _time(offset) -> OperationCount:
-    """A stage time tw_t + c*h (nothing for c = 0)."""
-    return NONE if offset == 0 else ADD
+def _scaled(step) -> bool:
+    """Whether the C multiplies every h-proportional constant by the piece's scale tw_hs (with
+    retries, emit.common.per_h), one product per use."""
+    return step.safeguards.pieces
 
 
-def _entry(entry) -> OperationCount:
-    """One entry of M = I - sum (coefficient * J[k]): products, sum, then '1 -' or a negation."""
+def _per_h(step) -> OperationCount:
+    """One use of an h-proportional constant: a product with the piece's scale, or nothing."""
+    return OperationCount(mul=1) if _scaled(step) else NONE
+
+
+def _time(offset, step=None) -> OperationCount:
+    """A stage time tw_t + c*h (nothing for c = 0; c*h scaled by the piece with retries)."""
+    if offset == 0:
+        return NONE
+    return ADD + (_per_h(step) if step is not None else NONE)
+
+
+def _entry(entry, scaled: bool = False) -> OperationCount:
+    """One entry of M = I - sum (coefficient * J[k]): products, sum, then '1 -' or a negation;
+    scaled: a numeric coefficient (h a_pq) is multiplied by the piece's scale first."""
     n = len(entry.terms)
     if n == 0:
         return NONE
-    return OperationCount(mul=n, add=n - 1) + ADD
+    extra = sum(1 for coefficient, _ in entry.terms if coefficient != G) if scaled else 0
+    return OperationCount(mul=n + extra, add=n - 1) + ADD
 
 
-def factor_cost(solve: LinearSolve) -> OperationCount:
-    """Assembly and factorization of the iteration matrix (none for a generation-time inverse)."""
+def factor_cost(solve: LinearSolve, scaled: bool = False) -> OperationCount:
+    """Assembly and factorization of the iteration matrix (none for a generation-time inverse);
+    scaled: the matrix's h-proportional entries are scaled by the piece (retries, no run-time G)."""
     if solve.kind == INVERSE:
         return NONE
-    assembly = _sum(_entry(e) for e in solve.entries)
+    assembly = _sum(_entry(e, scaled) for e in solve.entries)
     n = solve.size
     if solve.kind == DENSE_LU:
         divisions = n * (n - 1) // 2
@@ -235,76 +254,116 @@ def _newton_test(size: int) -> OperationCount:
     return OperationCount(div=size, add=size)
 
 
-def _explicit_substep(step: StepProgram) -> OperationCount:
+def _newton_watch(step, iterations: int, refresh: OperationCount) -> OperationCount:
+    """What one Newton solve adds to its iterations besides residual, solve and test, when it
+    converges on the last of iterations without a refresh that the monitor asks for.
+
+    Full Newton refreshes (refresh: J at the iterate and a factorization) after every iteration
+    but the last; the monitor of the simplified iteration compares each correction with
+    REFRESH_AT times the one before, one product from the second iteration on, but not on the
+    iteration that converges (the test of convergence comes first).
+    """
+    newton = step.newton
+    if newton.full:
+        return refresh.scaled(iterations - 1)
+    if newton.monitored:
+        return OperationCount(mul=max(iterations - 2, 0))
+    return NONE
+
+
+def _error_estimate(step) -> OperationCount:
+    """|sum (e_j * k_j)| * weight for every state: the products, their sum, the scaling by
+    1/full scale (nothing without embedded weights in the step)."""
+    if not step.error_weights:
+        return NONE
     nx = step.model.nx
+    return _combination(len(step.error_weights), nx, plus_base=False, scaled=_scaled(step)) + \
+        OperationCount(mul=nx)
+
+
+def _explicit_substep(step: StepProgram) -> OperationCount:
+    nx, scaled = step.model.nx, _scaled(step)
     rates = count_block(step.rates)
     total = NONE
     for stage in step.stages:
-        total = total + _combination(len(stage.terms), nx) + _time(stage.time_offset) + rates
-    total = total + _combination(len(step.weights), nx)
-    if step.error_weights:
-        # |sum (e_j * k_j)| * weight: the products, their sum, the scaling by 1/full scale
-        total = total + _combination(len(step.error_weights), nx, plus_base=False) + \
-            OperationCount(mul=nx)
-    return total
+        total = total + _combination(len(stage.terms), nx, scaled=scaled) + \
+            _time(stage.time_offset, step) + rates
+    return total + _error_estimate(step) + _combination(len(step.weights), nx, scaled=scaled)
 
 
 def _dirk_substep(step: ImplicitStep, iterations: int) -> OperationCount:
-    nx, solve = step.model.nx, step.solve
+    nx, solve, scaled = step.model.nx, step.solve, _scaled(step)
     rates = count_block(step.rates)
+    g = _per_h(step)  # one use of h*a_ii
     nonlinear = not step.linear
     total = OperationCount(add=nx) if nonlinear else NONE  # Newton scales: floor + |x|
     for stage in step.stages:
-        total = total + _combination(len(stage.terms), nx)
-        time = _time(stage.time_offset)
+        total = total + _combination(len(stage.terms), nx, scaled=scaled)
+        time = _time(stage.time_offset, step)
         if stage.solve_index is None:
             total = total + time + rates
             continue
         if stage.refactor:
-            total = total + factor_cost(solve)
+            total = total + g + factor_cost(solve)
         one_solve = solve_cost(solve, stage.solve_index)
         if nonlinear:  # residual (w + g*f) - y, solve, test: per iteration
-            residual = time + rates + OperationCount(mul=nx, add=2 * nx) + one_solve
-            total = total + (residual + _newton_test(nx)).scaled(iterations)
+            residual = time + rates + OperationCount(mul=nx, add=2 * nx) + g.scaled(nx) + \
+                one_solve
+            refresh = time + count_block(step.jacobian.block) + g + factor_cost(solve)
+            total = total + (residual + _newton_test(nx)).scaled(iterations) + \
+                _newton_watch(step, iterations, refresh)
         else:  # r = g*f, solve, y = w + r
-            total = total + time + rates + OperationCount(mul=nx, add=nx) + one_solve
-        total = total + OperationCount(add=nx, div=nx)  # k = (y - w) / g
-    return total + _combination(len(step.weights), nx)
+            total = total + time + rates + OperationCount(mul=nx, add=nx) + g.scaled(nx) + \
+                one_solve
+        total = total + OperationCount(add=nx, div=nx) + g.scaled(nx)  # k = (y - w) / g
+    return total + _combination(len(step.weights), nx, scaled=scaled)
 
 
 def _fully_implicit_substep(step: ImplicitStep, iterations: int) -> OperationCount:
-    nx, solve = step.model.nx, step.solve
+    nx, solve, scaled = step.model.nx, step.solve, _scaled(step)
     rates = count_block(step.rates)
     size = len(step.stages) * nx
     residual = solve_cost(solve)
     for stage in step.stages:  # y = x + z_p, f(t + c_p h, y)
-        residual = residual + OperationCount(add=nx) + _time(stage.time_offset) + rates
+        residual = residual + OperationCount(add=nx) + _time(stage.time_offset, step) + rates
     for stage in step.stages:  # r_p = (sum_q a_pq h f_q) - z_p
-        residual = residual + _combination(len(stage.terms), nx, plus_base=False) + \
-            OperationCount(add=nx)
-    total = factor_cost(solve)
+        residual = residual + _combination(len(stage.terms), nx, plus_base=False,
+                                           scaled=scaled) + OperationCount(add=nx)
+    factor = factor_cost(solve, scaled)
+    total = factor
     if step.linear:
         total = total + residual
     else:
-        total = total + OperationCount(add=nx) + (residual + _newton_test(size)).scaled(iterations)
-    if step.z_weights:
+        refresh = factor
+        for stage in step.stages:  # y = x + z_p, J(t + c_p h, y) per stage
+            refresh = refresh + OperationCount(add=nx) + _time(stage.time_offset, step) + \
+                count_block(step.jacobian.block)
+        total = total + OperationCount(add=nx) + \
+            (residual + _newton_test(size)).scaled(iterations) + \
+            _newton_watch(step, iterations, refresh)
+    if step.z_weights:  # d = b^T A^-1 does not scale with h
         return total + _combination(len(step.z_weights), nx)
     for p, _ in step.weights:
-        total = total + OperationCount(add=nx) + _time(step.stages[p].time_offset) + rates
-    return total + _combination(len(step.weights), nx)
+        total = total + OperationCount(add=nx) + _time(step.stages[p].time_offset, step) + rates
+    return total + _combination(len(step.weights), nx, scaled=scaled)
 
 
 def _rosenbrock_substep(step: ImplicitStep) -> OperationCount:
-    nx, solve = step.model.nx, step.solve
+    nx, solve, scaled = step.model.nx, step.solve, _scaled(step)
     rates = count_block(step.rates)
     total = factor_cost(solve)
+    if solve.kind != INVERSE:
+        total = total + _per_h(step)  # the factor's argument gamma*h
     if step.dfdt is not None:
         total = total + count_block(step.dfdt)
     for stage in step.stages:
-        extra = len(stage.coupling) + (stage.time_term != 0)
-        total = total + _combination(len(stage.terms), nx) + _time(stage.time_offset) + rates + \
-            _combination(extra, nx) + solve_cost(solve)
-    return total + _combination(len(step.weights), nx)
+        # k + ((coupling_ij * k_j) + ... + (time_i*h * df/dt)): coupling has no h in it
+        timed = int(stage.time_term != 0)
+        extra = OperationCount(mul=timed * (2 if scaled else 1),
+                               add=timed).scaled(nx) + _combination(len(stage.coupling), nx)
+        total = total + _combination(len(stage.terms), nx, scaled=scaled) + \
+            _time(stage.time_offset, step) + rates + extra + solve_cost(solve)
+    return total + _error_estimate(step) + _combination(len(step.weights), nx, scaled=scaled)
 
 
 def _exact_substep(step: ImplicitStep) -> OperationCount:
@@ -317,10 +376,20 @@ def _exact_substep(step: ImplicitStep) -> OperationCount:
     return total
 
 
+# The time from the tick counter, origin + ticks * DT, with the counter converted from its two
+# 32-bit halves, (high * 2^32) + low: two products, two additions.
+TICK_TIME = OperationCount(mul=2, add=2)
+# A piece's or substep's time in the tick: t0 + (steps * h), or t0 + (position * shortest piece).
+STEP_TIME = OperationCount(mul=1, add=1)
+
+
 def step_cost(step: StepProgram | ImplicitStep,
               newton_iterations: int = ASSUMED_NEWTON_ITERATIONS) -> OperationCount:
-    """Floating-point operations of one tick (all substeps) of the simplified step, as the C
-    executes them (module docstring); newton_iterations per Newton solve."""
+    """Floating-point operations of one tick of the simplified step, as the C executes them on
+    the nominal path (module docstring): every substep taken at the first attempt (no retry), no
+    state clamped, every error estimate accepted, every Newton solve converged in
+    newton_iterations iterations without a refresh its monitor asks for (full Newton refreshes
+    after each iteration but the last)."""
     if isinstance(step, StepProgram):
         substep = _explicit_substep(step)
     elif step.scheme == DIAGONALLY_IMPLICIT:
@@ -335,9 +404,15 @@ def step_cost(step: StepProgram | ImplicitStep,
         raise TickwrightError(f"internal: no operation count for the scheme {step.scheme!r}")
     if isinstance(step, ImplicitStep) and step.jacobian is not None and not step.prefactored:
         substep = substep + count_block(step.jacobian.block)
-    if not (isinstance(step, ImplicitStep) and step.scheme == EXACT):  # the exact step has no t
-        substep = substep + OperationCount(mul=1, add=1)  # tw_t = t0 + (steps * h)
-    return substep.scaled(step.substeps) + ADD  # the new time, t0 + dt
+    timed = not (isinstance(step, ImplicitStep) and step.scheme == EXACT)  # the exact step has no t
+    if timed or step.safeguards.pieces:
+        # each substep's time (after it without retries, before each piece with them), and the
+        # tick's start time from the counter
+        substep = substep + STEP_TIME
+    total = substep.scaled(step.substeps)
+    if timed or step.safeguards.pieces:
+        total = total + TICK_TIME
+    return total + TICK_TIME  # the new time, from the incremented counter
 
 
 def uses_newton(step) -> bool:

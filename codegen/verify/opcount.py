@@ -3,30 +3,39 @@
 An independent witness for advice/cost.py, which counts on the IR: this module reads only the
 generated header and source. It understands the subset of C99 the emitters write (straight-line
 statements, declarations, for loops with a counter, if / else if / else, calls of the file's own
-static functions, the conditional operator) and nothing more; anything else is refused with an
-error rather than guessed.
+static functions, the conditional operator, integer shifts and masks) and nothing more; anything
+else is refused with an error rather than guessed.
 
 How it counts (the same rules as advice/cost.py):
 
 - an operator + - * / between floating operands is one add/mul/div, unless both operands are
   constants (literals or the #define'd coefficients: the compiler folds them); integer arithmetic
-  (indices, counters) and comparisons are not counted; a unary minus on a floating operand that
-  is not a constant is one 'add' (a negation);
+  (indices, counters, the tick counter's halves) and comparisons are not counted; a unary minus
+  on a floating operand that is not a constant is one 'add' (a negation);
 - sqrt/sqrtf is one 'sqrt', the other C library functions of cost.LIBRARY_CALLS one 'call';
   fabs, isfinite and isnan are not counted;
 - a call of a function defined in the file is counted as its body (inlined into the caller);
-- loops are run: integer variables are tracked through their assignments, so a loop's trip count
-  follows from its counter (``tw_i < AXIS_NX``, ``tw_j < tw_i``, ...); a condition part that reads
-  an untracked variable (a status or done flag, a pivot index chosen by value) is taken as true,
-  so the loop runs until its counter ends it;
-- the Newton loop, bounded by ``<P>_NEWTON_ITERATIONS``, runs the number of iterations given (the
-  macro is read as that number): the count of a Newton method is a count for a stated number of
-  iterations;
-- an if whose condition cannot be decided (it reads floating values or untracked flags) counts
-  its costliest branch; in the generated code that is the path taken when every check passes (the
-  failure branches only set a status), so guarded sections count as executed.
+- the conditional operator (the model's own conditionals) counts its costlier operand.
 
-An integer variable assigned inside an if branch is untracked (its value depends on the branch).
+Which path: the count follows one path through the tick, the nominal one, stated here:
+
+- integer variables, the status (its enumerators have their values) and floating variables set
+  from a literal are tracked through their assignments, so loops run as their counters say
+  (``tw_i < AXIS_NX``, ``tw_j < tw_i``, the pieces of a tick with retries, ...) and the checks
+  of the status decide themselves;
+- every value is finite: isfinite() is 1 and isnan() is 0;
+- the Newton loop, bounded by ``<P>_NEWTON_ITERATIONS``, converges on the last of the number of
+  iterations given (``tw_err <= <P>_NEWTON_TOL`` is true on that iteration only, and the macro
+  is read as that number): the count of a Newton method is a count for a stated number of
+  iterations;
+- any other if whose condition cannot be decided (it compares floating values: a pivot, the
+  contraction of Newton's iteration, a state against its range, an error estimate against the
+  accepted one) is false: pivots are good, the frozen Jacobian contracts fast enough (no
+  refresh; full Newton, which refreshes unconditionally, refreshes after every iteration but
+  the last), no state is clamped, every step's error is accepted, so no step is retried.
+
+A loop condition part that still reads an unknown value is taken as true, so the loop runs until
+its counter ends it.
 """
 
 from __future__ import annotations
@@ -44,12 +53,14 @@ MAX_LOOP_TRIPS = 100_000
 # Calls that cost nothing here: a sign-bit operation and the two classifications.
 FREE_CALLS = frozenset({"fabs", "fabsf", "isfinite", "isnan"})
 # Integer types of the generated code (status enums are added per file).
-INTEGER_TYPES = {"size_t", "uint32_t", "int", "unsigned"}
+INTEGER_TYPES = {"size_t", "uint32_t", "uint64_t", "int", "unsigned"}
+# Library predicates on the nominal path (module docstring): every value is finite.
+NOMINAL_PREDICATES = {"isfinite": 1, "isnan": 0}
 
 _TOKEN = re.compile(r"""
-    (?P<number>(?:\d+\.\d*|\.\d+|\d+)(?:[eE][+-]?\d+)?[fFuUlL]*)
+    (?P<number>0[xX][0-9A-Fa-f]+[uUlL]*|(?:\d+\.\d*|\.\d+|\d+)(?:[eE][+-]?\d+)?[fFuUlL]*)
   | (?P<name>[A-Za-z_]\w*)
-  | (?P<op>->|\+\+|--|&&|\|\||<=|>=|==|!=|[-+*/%<>=!?:;,(){}\[\].&|^~])
+  | (?P<op>->|\+\+|--|&&|\|\||<<|>>|<=|>=|==|!=|[-+*/%<>=!?:;,(){}\[\].&|^~])
   | (?P<space>\s+)
 """, re.VERBOSE)
 
@@ -186,7 +197,7 @@ class _Parser:
 
     # -- expressions, by precedence
     BINARY = [("||",), ("&&",), ("|",), ("^",), ("&",), ("==", "!="), ("<", ">", "<=", ">="),
-              ("+", "-"), ("*", "/", "%")]
+              ("<<", ">>"), ("+", "-"), ("*", "/", "%")]
 
     def expression(self) -> tuple:
         left = self.conditional()
@@ -274,25 +285,61 @@ class _Parser:
 
 @dataclass
 class _Value:
-    """An operand: floating or integer, constant or not, and an integer's value when known."""
+    """An operand: floating or integer, constant (folded by the compiler) or not, and its value
+    when it is known on the path counted (an integer, or a floating value set from a literal)."""
 
     real: bool
     const: bool = False
-    value: int | None = None
+    value: int | float | None = None
 
 
 @dataclass
 class _Function:
     params: list[tuple[str, str, bool]]
     body: tuple
-    untracked: set[str] = field(default_factory=set)
+    real: bool = False  # whether it returns a floating value
+
+
+_COMPARE = {"<": lambda x, y: x < y, ">": lambda x, y: x > y, "<=": lambda x, y: x <= y,
+            ">=": lambda x, y: x >= y, "==": lambda x, y: x == y, "!=": lambda x, y: x != y}
+_INTEGER_OPS = {"+": lambda x, y: x + y, "-": lambda x, y: x - y, "*": lambda x, y: x * y,
+                "/": lambda x, y: x // y, "%": lambda x, y: x % y, "&": lambda x, y: x & y,
+                "|": lambda x, y: x | y, "^": lambda x, y: x ^ y, "<<": lambda x, y: x << y,
+                ">>": lambda x, y: x >> y}
+
+
+def _mentions(node, suffix: str) -> bool:
+    """Whether an expression tree reads a name ending in suffix."""
+    if not isinstance(node, tuple):
+        return False
+    if node[0] == "name":
+        return node[1].endswith(suffix)
+    return any(_mentions(part, suffix) for part in node[1:])
+
+
+def _assigned(node) -> set[str]:
+    """The variables a statement assigns to by name, at any depth."""
+    kind, out = node[0], set()
+    if kind == "block":
+        for s in node[1]:
+            out |= _assigned(s)
+    elif kind == "if":
+        out |= _assigned(node[2]) | (_assigned(node[3]) if node[3] is not None else set())
+    elif kind == "for":
+        out |= _assigned(node[4])
+    elif kind == "expr" and node[1] is not None and node[1][0] == "assign" \
+            and node[1][1][0] == "name":
+        out.add(node[1][1][1])
+    return out
 
 
 class _Counter:
     def __init__(self, functions: dict[str, _Function], defines: dict[str, str],
-                 real_types: set[str], members: set[str], newton_iterations: int):
+                 real_types: set[str], members: set[str], enumerators: dict[str, int],
+                 newton_iterations: int):
         self.functions, self.defines = functions, defines
         self.real_types, self.members = real_types, members
+        self.enumerators = enumerators
         self.newton_iterations = newton_iterations
         self.cache: dict[str, OperationCount] = {}
 
@@ -300,7 +347,7 @@ class _Counter:
     def function(self, name: str) -> OperationCount:
         if name not in self.cache:
             fn = self.functions[name]
-            env = {"vars": {}, "untracked": fn.untracked}
+            env = {"vars": {}}
             for ctype, pname, array in fn.params:
                 env["vars"][pname] = (ctype in self.real_types, array, None)
             tally = [OperationCount()]
@@ -322,8 +369,7 @@ class _Counter:
                     self.expr(item, env, tally)
             elif init is not None:
                 value = self.expr(init, env, tally).value
-            tracked = name not in env["untracked"] and ctype not in self.real_types
-            env["vars"][name] = (ctype in self.real_types, array, value if tracked else None)
+            env["vars"][name] = (ctype in self.real_types, array, None if array else value)
         elif kind == "expr":
             if node[1] is not None:
                 self.expr(node[1], env, tally)
@@ -332,31 +378,31 @@ class _Counter:
         elif kind == "if":
             _, cond, then, other = node
             decided = self.expr(cond, env, tally).value
-            if decided is not None:
-                chosen = then if decided else other
-                if chosen is not None:
-                    self.statement(chosen, env, tally)
-                return
-            branches = []
-            for branch in (then, other):
-                benv, btally = copy.deepcopy(env), [OperationCount()]
-                if branch is not None:
-                    self.statement(branch, benv, btally)
-                branches.append((btally[0], benv))
-            (a, aenv), (b, benv) = branches
-            cost, chosen_env = (a, aenv) if a.total >= b.total else (b, benv)
-            tally[0] = tally[0] + cost
-            env["vars"] = chosen_env["vars"]
+            # Undecided: a comparison of floating values, false on the nominal path; a floating
+            # variable the branch not taken would set holds a value that depends on the data.
+            chosen = then if decided else other
+            if decided is None:
+                for name in _assigned(then):
+                    real, array, _ = env["vars"].get(name, (False, False, None))
+                    if real:
+                        env["vars"][name] = (real, array, None)
+            if chosen is not None:
+                self.statement(chosen, env, tally)
         else:  # pragma: no cover - the parser makes no other statement
             raise CheckError(f"operation count: unknown statement {kind}")
 
     def loop(self, node, env, tally) -> None:
         _, init, cond, step, body = node
+        newton = cond is not None and _mentions(cond, "_NEWTON_ITERATIONS")
+        outer = env.get("newton")
         if init is not None:
             self.expr(init, env, tally)
-        for _ in range(MAX_LOOP_TRIPS):
+        for trip in range(MAX_LOOP_TRIPS):
             if cond is not None and self.expr(cond, env, tally, loop=True).value == 0:
+                env["newton"] = outer
                 return
+            if newton:
+                env["newton"] = trip
             self.statement(body, env, tally)
             if step is not None:
                 self.expr(step, env, tally)
@@ -368,8 +414,8 @@ class _Counter:
         if kind == "number":
             tok = node[1]
             if _is_real_literal(tok):
-                return _Value(real=True, const=True)
-            return _Value(real=False, const=True, value=int(re.sub(r"[uUlL]+$", "", tok)))
+                return _Value(real=True, const=True, value=float(tok.rstrip("fFlL")))
+            return _Value(real=False, const=True, value=int(re.sub(r"[uUlL]+$", "", tok), 0))
         if kind == "name":
             return self.name(node[1], env)
         if kind == "member":
@@ -384,7 +430,7 @@ class _Counter:
             inner = self.expr(node[2], env, tally)
             if node[1] in self.real_types:
                 return _Value(real=True, const=inner.const)
-            return _Value(real=False, value=inner.value)
+            return _Value(real=False, value=inner.value if not inner.real else None)
         if kind == "call":
             return self.call(node, env, tally)
         if kind == "unary":
@@ -397,13 +443,13 @@ class _Counter:
             if op == "!":
                 negated = None if inner.value is None else int(not inner.value)
                 return _Value(real=False, value=negated)
-            if inner.real:
-                if op == "-" and not inner.const:
-                    tally[0] = tally[0] + OperationCount(add=1)
-                return inner
-            return _Value(real=False, const=inner.const,
-                          value=None if inner.value is None else (-inner.value if op == "-"
-                                                                  else inner.value))
+            if op == "~":
+                return _Value(real=False, const=inner.const)
+            if inner.real and op == "-" and not inner.const:
+                tally[0] = tally[0] + OperationCount(add=1)
+            value = inner.value
+            return _Value(real=inner.real, const=inner.const,
+                          value=-value if value is not None and op == "-" else value)
         if kind == "incr":
             target = node[2]
             current = self.expr(target, env, tally)
@@ -415,12 +461,13 @@ class _Counter:
         if kind == "assign":
             value = self.expr(node[2], env, tally)
             self.expr(node[1], env, tally)
-            self.store(node[1], value.value if not value.real else None, env)
+            self.store(node[1], value.value, env)
             return value
         if kind == "ternary":
             decided = self.expr(node[1], env, tally).value
             if decided is not None:
                 return self.expr(node[2] if decided else node[3], env, tally)
+            # The model's own conditional: the costlier operand, as advice/cost.py counts it.
             ta, tb = [OperationCount()], [OperationCount()]
             va = self.expr(node[2], copy.deepcopy(env), ta)
             vb = self.expr(node[3], copy.deepcopy(env), tb)
@@ -435,6 +482,8 @@ class _Counter:
         a = self.expr(left, env, tally, loop)
         if op == "&&" and a.value == 0 and a.value is not None:
             return _Value(real=False, value=0)
+        if op == "||" and a.value and a.value is not None:
+            return _Value(real=False, value=1)
         b = self.expr(right, env, tally, loop)
         if op in ("&&", "||"):
             if op == "&&":
@@ -449,13 +498,12 @@ class _Counter:
                 return _Value(real=False, value=1)
             both = a.value is not None and b.value is not None
             return _Value(real=False, value=0 if both else None)
-        if op in ("<", ">", "<=", ">=", "==", "!="):
-            if a.real or b.real or a.value is None or b.value is None:
+        if op in _COMPARE:
+            if _mentions(right, "_NEWTON_TOL") or _mentions(left, "_NEWTON_TOL"):
+                return _Value(real=False, value=self.converged(op, left, right, env))
+            if a.value is None or b.value is None:
                 return _Value(real=False)
-            result = {"<": a.value < b.value, ">": a.value > b.value, "<=": a.value <= b.value,
-                      ">=": a.value >= b.value, "==": a.value == b.value,
-                      "!=": a.value != b.value}[op]
-            return _Value(real=False, value=int(result))
+            return _Value(real=False, value=int(_COMPARE[op](a.value, b.value)))
         if a.real or b.real:
             if a.const and b.const:
                 return _Value(real=True, const=True)
@@ -466,26 +514,32 @@ class _Counter:
             return _Value(real=True)
         if a.value is None or b.value is None:
             return _Value(real=False, const=a.const and b.const)
-        result = {"+": lambda x, y: x + y, "-": lambda x, y: x - y, "*": lambda x, y: x * y,
-                  "/": lambda x, y: x // y, "%": lambda x, y: x % y, "&": lambda x, y: x & y,
-                  "|": lambda x, y: x | y, "^": lambda x, y: x ^ y}[op](a.value, b.value)
-        return _Value(real=False, const=a.const and b.const, value=result)
+        return _Value(real=False, const=a.const and b.const,
+                      value=_INTEGER_OPS[op](a.value, b.value))
+
+    def converged(self, op: str, left, right, env) -> int:
+        """Newton's test 'error <= <P>_NEWTON_TOL': true on the last iteration counted only."""
+        trip = env.get("newton")
+        if trip is None or op != "<=" or right[0] != "name" or left[0] != "name":
+            raise CheckError("operation count: the Newton tolerance is read outside the Newton "
+                             "test 'tw_err <= <P>_NEWTON_TOL' of a Newton loop")
+        return int(trip == self.newton_iterations - 1)
 
     def name(self, name: str, env) -> _Value:
         if name in env["vars"]:
             real, _, value = env["vars"][name]
             return _Value(real=real, value=value)
+        if name in self.enumerators:
+            return _Value(real=False, const=True, value=self.enumerators[name])
         if name in self.defines:
             if name.endswith("_NEWTON_ITERATIONS"):
                 return _Value(real=False, const=True, value=self.newton_iterations)
             text = self.defines[name].strip("() ")
             if _is_real_literal(text.lstrip("-")):
-                return _Value(real=True, const=True)
+                return _Value(real=True, const=True, value=float(text.rstrip("fFlL")))
             if re.fullmatch(r"-?\d+[uUlL]*", text):
                 return _Value(real=False, const=True, value=int(re.sub(r"[uUlL]+$", "", text)))
             raise CheckError(f"operation count: cannot read the macro {name} = {text!r}")
-        if name.isupper():  # an enumerator of the status type
-            return _Value(real=False, const=True)
         raise CheckError(f"operation count: '{name}' is not declared in the C")
 
     def store(self, target, value, env) -> None:
@@ -494,7 +548,7 @@ class _Counter:
         name = target[1]
         if name in env["vars"]:
             real, array, _ = env["vars"][name]
-            env["vars"][name] = (real, array, None if name in env["untracked"] else value)
+            env["vars"][name] = (real, array, None if array else value)
 
     def call(self, node, env, tally) -> _Value:
         callee = node[1]
@@ -505,9 +559,11 @@ class _Counter:
             self.expr(arg, env, tally)
         if fname in self.functions:
             tally[0] = tally[0] + self.function(fname)
-            return _Value(real=False)
+            return _Value(real=self.functions[fname].real)
+        if fname in NOMINAL_PREDICATES:
+            return _Value(real=False, value=NOMINAL_PREDICATES[fname])
         if fname in FREE_CALLS:
-            return _Value(real=fname.startswith("fabs"))
+            return _Value(real=True)
         base = fname[:-1] if fname.endswith("f") and fname[:-1] in LIBRARY_CALLS | {"sqrt"} \
             else fname
         if base == "sqrt":
@@ -519,31 +575,22 @@ class _Counter:
         return _Value(real=True)
 
 
-def _assigned_in_branches(node, inside: bool, out: set[str]) -> None:
-    """Names assigned by a statement inside an if branch (at any depth): their value is unknown."""
-    kind = node[0]
-    if kind == "block":
-        for s in node[1]:
-            _assigned_in_branches(s, inside, out)
-    elif kind == "if":
-        _assigned_in_branches(node[2], True, out)
-        if node[3] is not None:
-            _assigned_in_branches(node[3], True, out)
-    elif kind == "for":
-        _assigned_in_branches(node[4], inside, out)
-    elif kind == "expr" and inside and node[1] is not None and node[1][0] == "assign" \
-            and node[1][1][0] == "name":
-        out.add(node[1][1][1])
-
-
 def _read_file(text: str, defines: dict, real_types: set, int_types: set, struct_types: set,
-               members: set, functions: dict) -> None:
+               members: set, enumerators: dict, functions: dict) -> None:
     body, more = _strip(text)
     defines.update(more)
     for m in re.finditer(r"typedef\s+(float|double)\s+(\w+)\s*;", body):
         real_types.add(m.group(2))
-    for m in re.finditer(r"typedef\s+enum\s*\{[^}]*\}\s*(\w+)\s*;", body):
-        int_types.add(m.group(1))
+    for m in re.finditer(r"typedef\s+enum\s*\{([^}]*)\}\s*(\w+)\s*;", body):
+        int_types.add(m.group(2))
+        value = 0
+        for item in m.group(1).split(","):
+            named = re.fullmatch(r"\s*(\w+)\s*(?:=\s*(\d+)[uU]?)?\s*", item)
+            if not named:
+                raise CheckError(f"operation count: cannot read the enumerator {item.strip()!r}")
+            value = int(named.group(2)) if named.group(2) else value
+            enumerators[named.group(1)] = value
+            value += 1
     for m in re.finditer(r"typedef\s+struct\s*\{([^}]*)\}\s*(\w+)\s*;", body):
         int_types.discard(m.group(2))
         struct_types.add(m.group(2))
@@ -577,10 +624,8 @@ def _read_file(text: str, defines: dict, real_types: set, int_types: set, struct
             continue
         parser = _Parser(tokens, types)
         parser.i = k + 1
-        fn_body = parser.compound()
-        untracked: set[str] = set()
-        _assigned_in_branches(fn_body, False, untracked)
-        functions[name] = _Function(params=params, body=fn_body, untracked=untracked)
+        functions[name] = _Function(params=params, body=parser.compound(),
+                                    real=tokens[j - 2] in real_types)
         i = parser.i
 
 
@@ -604,11 +649,12 @@ def count_c(csource, newton_iterations: int = 3) -> OperationCount:
     every Newton loop running newton_iterations times (module docstring)."""
     defines: dict[str, str] = {}
     real_types, int_types, struct_types, members = {"float", "double"}, set(), set(), set()
+    enumerators: dict[str, int] = {}
     functions: dict[str, _Function] = {}
     for name, into in ((csource.header_name, {}), (csource.source_name, functions)):
         _read_file(csource.text(name), defines, real_types, int_types, struct_types, members,
-                   into)
-    counter = _Counter(functions, defines, real_types, members, newton_iterations)
+                   enumerators, into)
+    counter = _Counter(functions, defines, real_types, members, enumerators, newton_iterations)
     name = f"{csource.prefix}_advance"
     if name not in functions:
         raise CheckError(f"operation count: {csource.source_name} defines no {name}()")
