@@ -10,6 +10,7 @@ nextafter for a value one unit in the last place away.
 from __future__ import annotations
 
 import json
+import re
 from fractions import Fraction
 
 import numpy as np
@@ -134,6 +135,23 @@ def test_the_audit_passes_every_built_in_method(model_path, precision):
     assert audited >= 21
 
 
+@pytest.mark.parametrize("options, methods", [
+    (dict(retry_depth=3), ("rk4", "sdirk2", "radau-iia3", "ros2")),
+    (dict(full_newton=True, clamp_states=True), ("backward-euler", "gauss2", "euler")),
+    (dict(newton_refreshes=0), ("sdirk3", "lobatto-iiic2")),
+    (dict(accept_error=1e-3, retry_depth=2, clamp_states=True), ("bs3", "dp5", "ros2")),
+    (dict(error_estimate=True), ("bs3", "ros2"))])
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_the_audit_passes_with_every_safeguard_and_newton_option(options, methods, precision):
+    for model_path in DEMO_MODELS:
+        model = load_model(model_path)
+        for method_id in methods:
+            step = simplify(discretize(model, builtin(method_id), EXAMPLE_DT[model.name], 2,
+                                       **options))
+            result = audit_coefficients(step, emit(step, precision))
+            assert result.passed, (model.name, method_id, result.problems)
+
+
 def one_ulp_up(text: str) -> str:
     """The float literal one unit in the last place above text, as the printer would write it."""
     value = np.float32(text.rstrip("F"))
@@ -174,6 +192,59 @@ def test_the_check_fails_on_the_planted_error_while_the_trajectories_still_agree
     # the audit does, and the cross-check fails on it.
     assert c.ratio <= 1.0 and c.accurate
     assert not c.coefficients.passed and not c.passed
+
+
+def _safeguarded(method_id: str, **options) -> tuple:
+    axis = load_model(EXAMPLES / "axis.toml")
+    step = simplify(discretize(axis, builtin(method_id), 2e-4, 1, **options))
+    return step, emit(step, "float")
+
+
+@pytest.mark.parametrize("method_id, literal, named", [
+    ("sdirk2", "4.2949673e+09F", "axis_ticks: the weight of the high half"),  # 2^32
+    ("sdirk2", "(0.25F)", "AXIS_REFRESH_AT"),                         # Newton's refresh rate
+    ("sdirk2", "(2.49999994e-05F)", "AXIS_FINE_STEP"),                # h / 2^3
+    ("bs3", "(0.00100000005F)", "AXIS_ACCEPT_ERROR"),                 # --accept-error 1e-3
+    ("bs3", "(300.0F)", "AXIS_MAX_W"),                                # a clamp bound
+    ("sdirk2", "tw_hs * 0.5F", "axis_advance: tw_hs"),                # a retried piece's half
+    ("sdirk2", "tw_hs * 2.0F", "axis_advance: tw_hs"),                # its way back
+])
+def test_the_literals_of_the_safeguards_are_audited_by_what_they_stand_for(method_id, literal,
+                                                                          named):
+    options = dict(retry_depth=3, clamp_states=True)
+    if method_id == "bs3":
+        options["accept_error"] = 1e-3
+    step, good = _safeguarded(method_id, **options)
+    assert audit_coefficients(step, good).passed
+    number = re.search(r"\d[\d.e+-]*F", literal).group()
+    bad = planted(good, literal, literal.replace(number, one_ulp_up(number)))
+    problems = audit_coefficients(step, bad).problems
+    assert len(problems) == 1 and problems[0].startswith(named), problems
+    assert one_ulp_up(number) in problems[0] and "\n" not in problems[0]
+
+
+def test_the_piece_scale_is_matched_by_its_role_not_by_its_value():
+    # Exact program constants are not whitelisted: 0.5 is right only where a retried piece's
+    # span is halved, 2 only where it doubles back, 2^32 only as the weight of the counter's high
+    # half taken by a shift of 32.
+    step, good = _safeguarded("sdirk2", retry_depth=2)
+    swapped = planted(good, "tw_hs = tw_hs * 2.0F;", "tw_hs = tw_hs * 0.5F;")
+    problems = audit_coefficients(step, swapped).problems
+    assert len(problems) == 1 and problems[0].startswith("axis_advance: tw_hs: literal 0.5F")
+    stray = planted(good, "tw_taken = tw_taken + 1U;",
+                    "tw_taken = tw_taken + 1U;\n            tw_hs = tw_hs * 0.5F;")
+    problems = audit_coefficients(step, stray).problems
+    assert len(problems) == 1 and "without changing its span" in problems[0]
+    shifted = planted(good, "(tw_n >> 32U)", "(tw_n >> 31U)")
+    problems = audit_coefficients(step, shifted).problems
+    assert len(problems) == 1 and "shift 31, mask 4294967295" in problems[0]
+    double_step = simplify(discretize(load_model(EXAMPLES / "axis.toml"), builtin("rk4"), 2e-4))
+    double = emit(double_step, "double")
+    assert "tw_high * 4294967296.0)" in double.text("axis.c")
+    assert audit_coefficients(double_step, double).passed
+    off = planted(double, "tw_high * 4294967296.0)", "tw_high * 4294967296.000001)")
+    problems = audit_coefficients(double_step, off).problems
+    assert len(problems) == 1 and "2^32" in problems[0]
 
 
 @pytest.mark.parametrize("method_id", ["sdirk2", "zoh-exact"])
@@ -273,8 +344,6 @@ def readme_block(after: str) -> list[str]:
 
 
 def test_the_readme_shows_what_the_demo_prints():
-    import re
-
     runner = CliRunner()
     with runner.isolated_filesystem():
         result = runner.invoke(main, ["demo"])

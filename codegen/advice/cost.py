@@ -16,12 +16,23 @@ what the C performs, not what the symbolic expressions look like:
   sign bit and is not counted, nor are comparisons, isfinite/isnan and integer index arithmetic).
 
 A tick is the advance function: per substep the stages (one rate evaluation each, the stage
-combinations, the stage times), the update and the time update, plus the store of the new time.
-Implicit kinds add the Jacobian, the assembly and factorization of the iteration matrix, the
-planned linear solves, the Newton test, and one residual per Newton iteration; the number of
-Newton iterations is a stated assumption (measured by the advice, else ASSUMED_NEWTON_ITERATIONS),
-the same for every solve. verify/opcount.py counts the operators of the generated C text itself;
-tests/test_opcount.py checks that both counts agree for every built-in method on the examples.
+combinations, the stage times), the update and the substep's time t0 + (steps * h), plus the
+tick's start time and its new time, each origin + (ticks * DT) from the tick counter converted
+through its two 32-bit halves. Implicit kinds add the Jacobian, the assembly and factorization of
+the iteration matrix, the planned linear solves, the Newton test, and one residual per Newton
+iteration; the number of Newton iterations is a stated assumption (measured by the advice, else
+ASSUMED_NEWTON_ITERATIONS), the same for every solve.
+
+The count is that of the nominal tick: every Newton solve converges on its last assumed iteration
+without a refresh (the simplified iteration's monitor still costs one product per iteration
+from the second to the one before the last; full Newton refreshes J and the factorization after
+every iteration but the last), no step is retried, every error estimate is accepted and no state
+is clamped (a clamp only compares and assigns). With retries (--max-retry-depth) the tick runs
+as pieces: the piece's time t0 + (position * shortest piece) replaces the substep's, and every
+h-proportional constant is multiplied by the piece's scale where it is used, one product each.
+verify/opcount.py counts the operators of the generated C text itself on the same path;
+tests/test_opcount.py checks that both counts agree for every built-in method on the examples,
+and for every safeguard and Newton option.
 """
 
 from __future__ import annotations

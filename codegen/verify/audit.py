@@ -7,12 +7,15 @@ other operation adds. No comparison of trajectories can tell it from honest roun
 cases, where every operation of a tick is exact and the bound is 0, does such a change show in the
 results (tests/test_crosscheck.py has one). So the audit reads the C text itself: each literal is
 matched to the IR value it stands for, by the constant's name (the #define'd coefficients, the
-tick in the header), by its position in a printed expression (the rate function, its Jacobian,
-df/dt, the outputs), by its row and column (a generation-time inverse, the exact propagator) or
-by the field it sets (the reset values), and must equal the IR's exact value correctly rounded to
-the precision by rounding.correctly_rounded (Fraction arithmetic, independent of the printer's own
-rounding). Any other literal must be 0 or 1 (the emitters' structural constants); anything else
-is reported.
+tick in the header, the safeguards' constants: the shortest piece h / 2^depth, the accepted
+error, the clamp bounds, Newton's refresh rate), by its position in a printed expression (the
+rate function, its Jacobian, df/dt, the outputs), by its row and column (a generation-time
+inverse, the exact propagator), by the field it sets (the reset values) or by its role in the
+program: the weight of the tick counter's high half is 2^k for the shift k that took that half,
+and a retried piece's scale is multiplied by exactly 1/2 where its span halves and by 2 where it
+doubles back. Each must equal its exact value correctly rounded to the precision by
+rounding.correctly_rounded (Fraction arithmetic, independent of the printer's own rounding). Any
+other literal must be 0 or 1 (the emitters' structural constants); anything else is reported.
 """
 
 from __future__ import annotations
@@ -23,7 +26,7 @@ from fractions import Fraction
 
 import sympy as sp
 
-from ..discretize import INVERSE, ImplicitStep, StepProgram
+from ..discretize import INVERSE, NEWTON_REFRESH_RATE, ImplicitStep, StepProgram
 from ..emit.printer import StepPrinter
 from ..methods import EXACT, LINEARLY_IMPLICIT
 from ..rounding import correctly_rounded, exact_fraction
@@ -88,8 +91,29 @@ class _Auditor:
         def put(name, value, what):
             out.setdefault(f"{up}_{name}", (value, what))
 
-        if not (isinstance(step, ImplicitStep) and step.scheme == EXACT):
+        guards = step.safeguards
+        if guards.pieces:
+            put("FINE_STEP", step.h / 2 ** guards.retry_depth,
+                f"h / 2^{guards.retry_depth}, the shortest piece")
+        elif not (isinstance(step, ImplicitStep) and step.scheme == EXACT):
             put("STEP", step.h, "h")
+        if guards.accept_error is not None:
+            put("ACCEPT_ERROR", sp.Rational(repr(float(guards.accept_error))),
+                "the accepted error estimate")
+        if guards.clamp_states:
+            for s in step.model.states:
+                if s.range:
+                    put(f"MIN_{s.name.upper()}", sp.Rational(repr(float(s.range[0]))),
+                        f"the lower bound of {s.name}")
+                    put(f"MAX_{s.name.upper()}", sp.Rational(repr(float(s.range[1]))),
+                        f"the upper bound of {s.name}")
+        if step.error_weights:
+            from ..emit import error_scale
+
+            for j, v in step.error_weights:
+                put(f"E{j + 1}H", v, f"(b{j + 1} - b_hat{j + 1})*h")
+            for i, s in enumerate(step.model.states):
+                put(f"ERR_W{i + 1}", 1 / error_scale(s), f"1/full scale of {s.name}")
         for stage in step.stages:
             i = stage.index + 1
             if stage.time_offset != 0:
@@ -107,13 +131,6 @@ class _Auditor:
         for j, v in step.weights:
             put(f"B{j + 1}H", v, f"b{j + 1}*h")
         if isinstance(step, StepProgram):
-            from ..emit import error_scale
-
-            for j, v in step.error_weights:
-                put(f"E{j + 1}H", v, f"(b{j + 1} - b_hat{j + 1})*h")
-            if step.error_weights:
-                for i, s in enumerate(step.model.states):
-                    put(f"ERR_W{i + 1}", 1 / error_scale(s), f"1/full scale of {s.name}")
             return out
         for i, d in step.z_weights:
             put(f"D{i + 1}", d, f"d{i + 1} of b^T A^-1")
@@ -124,6 +141,9 @@ class _Auditor:
                 f"the Newton scale of {s.name}")
         tol = step.newton.tolerance_for(self.precision)
         put("NEWTON_TOL", sp.Rational(repr(tol)), "the Newton tolerance")
+        if step.newton.monitored:
+            put("REFRESH_AT", sp.Rational(repr(NEWTON_REFRESH_RATE)),
+                "the contraction rate that refreshes J")
         return out
 
     def defines(self, text: str) -> dict[str, str]:
@@ -261,9 +281,13 @@ class _Auditor:
                         for i, row in enumerate(step.solve.inverses[which])}
                 matched = self.products(lines, fname, rows,
                                         lambda t: int(re.fullmatch(r"tw_in\[(\d+)\]", t).group(1)))
+            elif fname == f"{p}_ticks":
+                matched = self.counter(lines, fname)
             elif fname == f"{p}_advance" and isinstance(step, ImplicitStep) \
                     and step.scheme == EXACT:
                 matched = self.products(lines, fname, self.propagator_rows(), self.operand)
+            if step.safeguards.pieces:
+                matched |= self.piece_scale(lines, fname)
             self.leftovers(fname, [line for n, line in enumerate(lines) if n not in matched])
 
     def propagator_rows(self) -> dict[int, list]:
@@ -281,6 +305,60 @@ class _Auditor:
     @staticmethod
     def operand(text: str) -> str:
         return text
+
+    def counter(self, lines, fname) -> set[int]:
+        """The tick counter's conversion: the literal that weighs the high half must be 2^k for
+        the shift k that took the high half, and the low half's mask 2^k - 1."""
+        real = re.escape(f"{self.step.model.name}_real_t")
+        shift = mask = None
+        matched = set()
+        for n, line in enumerate(lines):
+            m = re.fullmatch(r"const uint32_t tw_high = \(uint32_t\)\(tw_n >> (\d+)U\);", line)
+            if m:
+                shift = int(m.group(1))
+                matched.add(n)
+            m = re.fullmatch(r"const uint32_t tw_low = \(uint32_t\)\(tw_n & (0x[0-9A-F]+)U\);",
+                             line)
+            if m:
+                mask = int(m.group(1), 16)
+                matched.add(n)
+            m = re.fullmatch(rf"return \(\({real}\)tw_high \* ({LITERAL})\) \+ "
+                             rf"\({real}\)tw_low;", line)
+            if m:
+                matched.add(n)
+                if shift is None or mask != 2 ** shift - 1:
+                    self.problems.append(f"{fname}: the counter's halves are not taken by a "
+                                         f"shift k and the mask 2^k - 1 (shift {shift}, mask "
+                                         f"{mask})")
+                    continue
+                self.compare(f"{fname}: the weight of the high half", m.group(1),
+                             sp.Integer(2) ** shift, f"2^{shift}, the weight of the high half")
+        return matched
+
+    def piece_scale(self, lines, fname) -> set[int]:
+        """With retries, the piece's scale tw_hs follows its span of shortest pieces: halving
+        the span multiplies tw_hs by exactly 1/2, doubling it by exactly 2."""
+        matched = set()
+        for n, line in enumerate(lines):
+            m = re.fullmatch(rf"tw_hs = tw_hs \* ({LITERAL});", line)
+            if not m:
+                continue
+            matched.add(n)
+            before = lines[n - 1] if n else ""
+            shorter = re.fullmatch(r"tw_span = tw_span / (\d+)U;", before)
+            longer = re.fullmatch(r"tw_span = (\d+)U \* tw_span;", before)
+            if shorter:
+                factor = sp.Rational(1, int(shorter.group(1)))
+                what = f"1/{shorter.group(1)}, the scale of a piece whose span was divided by it"
+            elif longer:
+                factor = sp.Integer(int(longer.group(1)))
+                what = f"{factor}, the scale of a piece whose span was multiplied by it"
+            else:
+                self.problems.append(f"{fname}: '{line}' scales the piece without changing its "
+                                     "span")
+                continue
+            self.compare(f"{fname}: tw_hs", m.group(1), factor, what)
+        return matched
 
     def leftovers(self, fname: str, lines: list[str]) -> None:
         for line in lines:
