@@ -25,7 +25,7 @@ STRICT = "gcc -std=c99 -Wall ... -Werror -ffp-contract=off -O2 -c axis.c -o out.
 
 
 def cross(precision, difference, bound, error, passed=True, completed=200, status="OK",
-          worst=(154, 108), state="i", ratios=None, literals=28):
+          worst=(154, 108), state="i", ratios=None, literals=30):
     ratios = ratios or {state: difference / bound}
     return CrossCheck(precision=precision, ticks=200, completed=completed,
                       max_difference=difference, tolerance=bound, worst_state=state,
@@ -92,7 +92,7 @@ def test_a_run_that_stopped_names_its_status_on_its_own_fail_line(status, meanin
         "  cross-check float        ok    max |C - reference| = 1e-06 (bound 0.00238, ratio "
         "0.00042) in i at tick 37, t = 0.0037 s; 120 ticks",
         "                                 observed/bound per state: i 0.00042",
-        "  coefficients float       ok    every literal of the C (28) equals the correctly rounded "
+        "  coefficients float       ok    every literal of the C (30) equals the correctly rounded "
         "exact value of the IR",
         "  accuracy float           ok    max |C - solve_ivp| = 0.1 % of the state's scale "
         "(target 1 %) in i at tick 120, t = 0.012 s",
