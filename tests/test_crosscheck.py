@@ -26,7 +26,7 @@ from codegen.model import Input, State, define, load_model
 from codegen.pipeline import generate
 from codegen.rounding import UNIT_ROUNDOFF
 from codegen.simplify import simplify
-from codegen.verify import bound, check, cross_check
+from codegen.verify import bound, check, cross_check, crosscheck
 from codegen.verify.audit import audit_coefficients
 
 from conftest import DEMO_MODELS, EXAMPLES
@@ -114,6 +114,58 @@ def test_products_quotients_and_exact_operations_are_bounded_like_float32_comput
     half, three = ar.known(0.5), ar.known(3.0)
     assert ar.mul(half, three).err[0] == 0 and ar.add(half, three).err[0] == 0
     assert ar.div(three, half).err[0] == 0 and ar.div(ar.known(1.0), three).err[0] > 0
+
+
+def test_scaling_by_a_power_of_two_and_adding_zero_add_no_rounding():
+    # IEEE 754: x * 2^k is exact unless it leaves the normal range, x + 0 and x * 0 are exact
+    # (common practice, no source); the running bound then carries the operand's error alone.
+    ar = bound.Arithmetic("float", 1)
+    third = ar.literal(sp.Rational(1, 3))  # inexact: carries its representation error
+    half = ar.known(0.5)
+    scaled = ar.mul(third, half)
+    assert scaled.err[0] == third.err[0] / 2 and not scaled.exact[0]
+    assert float(np.float32(1 / 3) * np.float32(0.5)) == float(np.float32(1 / 3)) / 2
+    assert ar.add(third, ar.known(0.0)).err[0] == third.err[0]
+    assert ar.mul(ar.known(0.0), third).err[0] == 0
+    # Below the normal range the product loses bits: (1 + 2^-23) 2^-126 / 8 is not a float.
+    above_tiny = float(np.nextafter(np.finfo(np.float32).tiny, np.float32(1)))
+    assert float(np.float32(above_tiny * 2.0 ** -3)) != above_tiny * 2.0 ** -3
+    assert ar.mul(ar.known(above_tiny), ar.known(2.0 ** -3)).err[0] > 0
+
+
+def quadratic():
+    """x' = x^2 + 1 from x = 1: a backward Euler step of 0.5 or 0.25 has no solution (the stage
+    equation x1 = 1 + h (x1^2 + 1) has real roots only for h <= (sqrt(2) - 1)/2)."""
+    x = sp.Symbol("x", real=True)
+    return define("quad", states=[State(name="x", initial=1.0, rate=x ** 2 + 1)])
+
+
+@pytest.mark.parametrize("precision", ["float", "double"])
+def test_a_retried_tick_is_bounded_piece_by_piece(precision):
+    # With retries the reference takes the tick as the C does, in 7 pieces after 6 failed
+    # attempts (tests/test_stiff.py); the full step of 0.5 has no solution, so the tick can only
+    # be bounded along its pieces, each at its own length and position, each starting with the
+    # bound the pieces before it left.
+    model, method = quadratic(), builtin("backward-euler")
+    c = cross_check(model, method, 0.5, 1, precision, 1, inputs=np.zeros((1, 0)), accuracy=1.0,
+                    options=dict(retry_depth=4))
+    assert c.completed == 1 and c.passed and TIGHT < c.ratio <= 1.0, c
+    step = simplify(discretize(model, method, 0.5, 1, retry_depth=4))
+    stepper = crosscheck.reference.stepper(
+        model, method, {}, newton=crosscheck.generated_newton(model, precision, {}))
+    taker = crosscheck._Recorder(stepper)
+    crosscheck.reference.TickTaker(model, taker, 0.5, 1, step.safeguards).tick(
+        0.0, np.array([1.0]), np.zeros(0))
+    pieces = crosscheck.taken_pieces(taker.calls, 0.5, 4)
+    # Steps of 0.5 and 0.25 s fail, two of 0.125 s are taken, the next 0.25 s fails and so does
+    # its first half, two of 0.0625 s are taken, 0.125 s fails, 0.0625 s is taken, the next
+    # fails, and two of 0.03125 s end the tick: positions in shortest pieces of 0.03125 s.
+    assert [p.depth for p in pieces] == [2, 2, 3, 3, 3, 4, 4]
+    assert [p.position for p in pieces] == [0, 4, 8, 10, 12, 14, 15]
+    assert len(taker.calls) == 13
+    one = bound.piece_bounds(step, precision, 0.0, pieces[:1], np.zeros(0), {})
+    all_of_them = bound.piece_bounds(step, precision, 0.0, pieces, np.zeros(0), {})
+    assert np.all(0 < one) and np.all(one < all_of_them)
 
 
 # ---- the coefficient audit ---------------------------------------------------------------------

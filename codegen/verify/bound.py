@@ -125,9 +125,31 @@ class Arithmetic:
                 return np.spacing(a.astype(np.float32)).astype(np.float64) / 2
             return np.spacing(a) / 2
 
-    def _result(self, value, propagated, exact_op):
-        charge = np.where(exact_op, 0.0, self.half_ulp(value))
+    def normal(self, v):
+        """Whether v is 0 or a normal number of the precision (neither underflow nor overflow)."""
+        info = np.finfo(np.float32 if self.precision == "float" else np.float64)
+        with np.errstate(all="ignore"):
+            a = np.abs(v)
+            return np.isfinite(a) & ((a == 0) | ((a >= info.tiny) & (a <= info.max)))
+
+    def _result(self, value, propagated, exact_op, unrounded=None):
+        """A result: unrounded says the C's operation adds no rounding (default: exact_op, which
+        says besides that the value is exactly the C's)."""
+        unrounded = exact_op if unrounded is None else unrounded
+        charge = np.where(unrounded, 0.0, self.half_ulp(value))
         return Bounded(value, propagated + charge, exact_op)
+
+    @staticmethod
+    def _zero(a: Bounded):
+        """Where a is exactly the C's 0 (x + 0 and x * 0 are exact in IEEE arithmetic)."""
+        return a.exact & (a.value == 0)
+
+    @staticmethod
+    def _power_of_two(a: Bounded):
+        """Where a is exactly the C's 2^k (a product with it only moves the exponent)."""
+        with np.errstate(all="ignore"):
+            mantissa, _ = np.frexp(np.abs(a.value))
+        return a.exact & (mantissa == 0.5)
 
     # -- leaves
     def known(self, values) -> Bounded:
@@ -160,7 +182,8 @@ class Arithmetic:
             s = a.value + bv
             both = a.exact & b.exact
             exact_op = both & (_two_sum_error(a.value, bv, s) == 0) & self.fits(s)
-        return self._result(s, a.err + b.err, exact_op)
+            unrounded = exact_op | self._zero(a) | self._zero(b)
+        return self._result(s, a.err + b.err, exact_op, unrounded)
 
     def mul(self, a: Bounded, b: Bounded) -> Bounded:
         with np.errstate(all="ignore"):
@@ -168,7 +191,9 @@ class Arithmetic:
             exact_op = a.exact & b.exact & (_two_product_error(a.value, b.value, p) == 0) & \
                 self.fits(p)
             propagated = np.abs(b.value) * a.err + np.abs(a.value) * b.err
-        return self._result(p, propagated, exact_op)
+            scaling = (self._power_of_two(a) | self._power_of_two(b)) & self.normal(p)
+            unrounded = exact_op | self._zero(a) | self._zero(b) | scaling
+        return self._result(p, propagated, exact_op, unrounded)
 
     def div(self, a: Bounded, b: Bounded) -> Bounded:
         with np.errstate(all="ignore"):
@@ -370,10 +395,16 @@ class Walker:
 # ---- the step, scheme by scheme ---------------------------------------------------------------
 
 class StepBound:
-    """Mirrors one tick of the generated C on Bounded values: the bound on each new state."""
+    """Mirrors one tick of the generated C on Bounded values: the bound on each new state.
+
+    With retries (the step's Safeguards.pieces) the C runs the tick as pieces: each starts at
+    t0 + (position * shortest piece) and multiplies every h-proportional constant by the piece's
+    scale 2^-depth (exact). position None mirrors a tick taken without a retry (one piece per
+    substep, scale 1); a position and a scale mirror one piece of a retried tick (piece_bounds).
+    """
 
     def __init__(self, step, precision: str, analysis_precision: str, ts, xs, us, tunables: dict,
-                 newton_stop: bool):
+                 newton_stop: bool, scale: float = 1.0, position: int | None = None):
         self.step, self.model = step, step.model
         self.ticks = len(ts)
         self.ar = Arithmetic(analysis_precision, self.ticks)
@@ -383,6 +414,8 @@ class StepBound:
         self.tunables = tunables
         self.newton_stop = newton_stop
         self.nx = self.model.nx
+        self.pieces = step.safeguards.pieces
+        self.scale, self.position = scale, position
 
     # -- pieces shared by the schemes
     def env(self, t: Bounded, x: list[Bounded]) -> dict:
@@ -412,17 +445,28 @@ class StepBound:
         x = [self.ar.solved(xv[:, i]) for i in range(self.nx)]
         return np.stack([r.value for r in self.rates(self.ar.solved(t), x)], axis=1)
 
+    def per_h(self, c) -> Bounded:
+        """An h-proportional constant as the C uses it: its literal, times the piece's scale
+        with retries (emit.common.per_h)."""
+        lit = self.ar.literal(c)
+        return self.ar.mul(lit, self.ar.known(self.scale)) if self.pieces else lit
+
+    def per_h_value(self, c) -> float:
+        """The exact value of an h-proportional constant in the current piece."""
+        return float(c) * self.scale
+
     def combination(self, base: Bounded | None, terms) -> Bounded:
-        """base + ((c1 * v1) + (c2 * v2) + ...) as the emitters write a stage sum."""
+        """base + ((c1 * v1) + (c2 * v2) + ...) as the emitters write a stage sum; each c an
+        h-proportional constant (per_h), or a Bounded coefficient already as the C uses it."""
         ar = self.ar
-        products = [ar.mul(ar.literal(c), v) for c, v in terms]
+        products = [ar.mul(c if isinstance(c, Bounded) else self.per_h(c), v) for c, v in terms]
         if not products:
             return base
         total = ar.total(products)
         return total if base is None else ar.add(base, total)
 
     def time(self, t: Bounded, offset) -> Bounded:
-        return t if offset == 0 else self.ar.add(t, self.ar.literal(offset))
+        return t if offset == 0 else self.ar.add(t, self.per_h(offset))
 
     # -- linear solves
     def assemble(self, solve: LinearSolve, jac: list[Bounded], g: Bounded | None):
@@ -435,7 +479,7 @@ class StepBound:
         for e in solve.entries:
             if not e.terms:
                 continue
-            products = [ar.mul(g if c == G else ar.literal(c), jac[k]) for c, k in e.terms]
+            products = [ar.mul(g if c == G else self.per_h(c), jac[k]) for c, k in e.terms]
             total = ar.total(products)
             entry = ar.add(ar.literal(1), total, subtract=True) if e.one else ar.neg(total)
             values[:, e.row, e.col] = entry.value
@@ -466,11 +510,27 @@ class StepBound:
         return [ar.solved(d[:, i], err[:, i]) for i in range(n)]
 
     # -- the tick
-    def tick(self) -> np.ndarray:
-        """(ticks, nx): the bound on |C - exact step| after one tick, per state."""
+    def tick(self, start_error: np.ndarray | None = None) -> np.ndarray:
+        """(ticks, nx): the bound on |C - exact step| after one tick (or one piece), per state.
+
+        start_error: (ticks, nx) bound on the C's state at the start, for a piece after the
+        first of a retried tick (None: the C's own state, exact).
+        """
         ar, step = self.ar, self.step
         t0 = ar.known(self.ts)
-        x = [ar.known(self.xs[:, i]) for i in range(self.nx)]
+        if start_error is None:
+            x = [ar.known(self.xs[:, i]) for i in range(self.nx)]
+        else:
+            x = [ar.solved(self.xs[:, i], start_error[:, i]) for i in range(self.nx)]
+        if self.pieces:
+            # t0 + (position * shortest piece) before each piece (emit.common.piece_body)
+            span = 2 ** step.safeguards.retry_depth
+            shortest = ar.literal(step.h / span)
+            positions = [self.position] if self.position is not None else \
+                [n * span for n in range(step.substeps)]
+            for position in positions:
+                x = self.substep(ar.add(t0, ar.mul(ar.known(float(position)), shortest)), x)
+            return np.stack([xi.err for xi in x], axis=1)
         t = t0
         for n in range(step.substeps):
             x = self.substep(t, x)
@@ -529,8 +589,8 @@ class StepBound:
             if stage.solve_index is None:
                 k[stage.index] = self.rates(time, w)
                 continue
-            g = ar.literal(stage.diagonal)
-            gv = float(stage.diagonal)
+            g = self.per_h(stage.diagonal)
+            gv = self.per_h_value(stage.diagonal)
             if stage.refactor:
                 matrix = self.assemble(solve, jac, g)
             if step.linear:
@@ -572,7 +632,7 @@ class StepBound:
         a = np.zeros((s, s))
         for p, stage in enumerate(step.stages):
             for q, c in stage.terms:
-                a[p, q] = float(c)
+                a[p, q] = self.per_h_value(c)
         eye = np.eye(size)
 
         def residual(z: list[Bounded]) -> list[Bounded]:
@@ -617,15 +677,15 @@ class StepBound:
             e_z = _apply(np.abs(np.linalg.inv(m_z)), rho) + ar.half_ulp(zstar) + stop
             z = [ar.solved(zstar[:, i], e_z[:, i]) for i in range(size)]
         if step.z_weights:
-            return [self.combination(x[i], [(d, z[p * nx + i]) for p, d in step.z_weights])
-                    for i in range(nx)]
+            return [self.combination(x[i], [(ar.literal(d), z[p * nx + i])
+                                            for p, d in step.z_weights]) for i in range(nx)]
         f = {p: self.rates(times[p], [ar.add(x[i], z[p * nx + i]) for i in range(nx)])
              for p, _ in step.weights}
         return self.update(x, step.weights, f)
 
     def rosenbrock(self, t, x):
         ar, step, nx = self.ar, self.step, self.nx
-        g = ar.literal(step.gamma_h)
+        g = self.per_h(step.gamma_h)
         jac = None if step.prefactored else self.jacobian(t, x)
         matrix = None if step.prefactored else self.assemble(step.solve, jac, g)
         ft = None
@@ -635,7 +695,8 @@ class StepBound:
         for stage in step.stages:
             y = [self.combination(x[i], [(c, k[j][i]) for j, c in stage.terms]) for i in range(nx)]
             f = self.rates(self.time(t, stage.time_offset), y)
-            extra = [[(c, k[j][i]) for j, c in stage.coupling] for i in range(nx)]
+            extra = [[(ar.literal(c), k[j][i]) for j, c in stage.coupling]  # no h in them
+                     for i in range(nx)]
             if stage.time_term != 0:
                 for i in range(nx):
                     extra[i].append((stage.time_term, ft[i]))
@@ -724,13 +785,59 @@ def _split_lu(a: np.ndarray):
     return lower, upper
 
 
+@dataclass(frozen=True)
+class Piece:
+    """One piece a retried tick took: its start in shortest pieces of the tick (the C's tw_pos),
+    its depth (length h / 2^depth) and the reference's state at its start (nx)."""
+
+    position: int
+    depth: int
+    x: np.ndarray
+
+
+def piece_bounds(step, precision: str, t0: float, pieces, u, tunables: dict,
+                 reference_newton_stop: bool = False) -> np.ndarray:
+    """(nx,): the bound on |C - reference| after a tick taken as pieces (a retried tick), both
+    started from the C's state: the running analysis of each piece the tick took, in order, from
+    the reference's state at its start, each starting with the bound the pieces before it left
+    (carried through its operations to first order). Attempts that failed and were halved put the
+    state back and leave nothing behind. SAFETY times (the C's part + the reference's part)."""
+    c_part = ref_part = np.zeros((1, step.model.nx))
+    for piece in pieces:
+        common = dict(ts=[t0], xs=np.asarray(piece.x, float)[None, :],
+                      us=np.asarray(u, float)[None, :], tunables=tunables,
+                      scale=2.0 ** -piece.depth, position=piece.position)
+        c_part = StepBound(step, precision, precision, newton_stop=True, **common).tick(c_part)
+        ref_part = StepBound(step, precision, "double", newton_stop=reference_newton_stop,
+                             **common).tick(ref_part)
+    return SAFETY * (c_part + ref_part)[0]
+
+
 def tick_bounds(step, precision: str, ts, xs, us, tunables: dict,
-                reference_newton_stop: bool = False) -> np.ndarray:
+                reference_newton_stop: bool = False, retried: dict | None = None) -> np.ndarray:
     """(ticks, nx): the bound on |C - reference| after each tick, both started from the C's state
     before the tick: SAFETY times (the C's running bound in its precision, Newton stop included,
     plus the reference's own running bound in double, with the C's Newton stop too when the
-    reference iterates as the C does: reference_newton_stop)."""
-    c_part = StepBound(step, precision, precision, ts, xs, us, tunables, True).tick()
-    ref_part = StepBound(step, precision, "double", ts, xs, us, tunables,
-                         reference_newton_stop).tick()
-    return SAFETY * (c_part + ref_part)
+    reference iterates as the C does: reference_newton_stop).
+
+    retried: tick -> the Pieces the reference took in that tick when it retried a step; those
+    ticks are bounded piece by piece (piece_bounds), never as the full step the C did not take.
+    """
+    retried = retried or {}
+    ts, xs, us = np.asarray(ts, float), np.asarray(xs, float), np.asarray(us, float)
+    out = np.zeros((len(ts), step.model.nx))
+    plain = np.array([k for k in range(len(ts)) if k not in retried], dtype=int)
+
+    def at(ticks) -> dict:
+        return {name: (np.asarray(v)[ticks] if np.ndim(v) else v) for name, v in tunables.items()}
+
+    if plain.size:
+        values = dict(ts=ts[plain], xs=xs[plain], us=us[plain], tunables=at(plain))
+        c_part = StepBound(step, precision, precision, newton_stop=True, **values).tick()
+        ref_part = StepBound(step, precision, "double", newton_stop=reference_newton_stop,
+                             **values).tick()
+        out[plain] = SAFETY * (c_part + ref_part)
+    for k, pieces in sorted(retried.items()):
+        out[k] = piece_bounds(step, precision, ts[k], pieces, us[k], at(k),
+                              reference_newton_stop)
+    return out

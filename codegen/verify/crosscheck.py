@@ -25,6 +25,7 @@ from ..model import Model
 from ..pipeline import generate
 from ..run import as_precision, run_built, status_name, trajectory
 from .audit import CoefficientAudit, audit_coefficients
+from .bound import Piece
 from .scenario import DEFAULT_ACCURACY, excitation, state_scales, tunable_as_inputs
 
 
@@ -73,21 +74,53 @@ def tunable_values(built, model: Model) -> dict[str, float]:
     return {p.name: float(getattr(ctx, p.name)) for p in model.tunable}
 
 
+class _Recorder:
+    """A reference stepper that notes every step it is asked for: (t, x, h), in order."""
+
+    def __init__(self, stepper):
+        self.stepper, self.calls = stepper, []
+
+    def __call__(self, t, x, u, h):
+        self.calls.append((t, np.array(x, dtype=np.float64), h))
+        return self.stepper(t, x, u, h)
+
+
+def taken_pieces(calls, h: float, depth: int) -> tuple[Piece, ...]:
+    """The pieces a tick took, from the steps tried in it (in order) by a tick that succeeded.
+
+    A step that failed is followed by its first half, which starts where it did; a step that was
+    taken by the next piece, which starts later, or by the end of the tick. The position counts
+    shortest pieces h / 2^depth from the tick's start, as the C's tw_pos does.
+    """
+    pieces, position = [], 0
+    for i, (t, x, length) in enumerate(calls):
+        if i + 1 < len(calls) and calls[i + 1][0] == t:
+            continue  # failed, retried as halves from the same start
+        level = int(round(np.log2(h / length)))
+        pieces.append(Piece(position=position, depth=level, x=x))
+        position += 2 ** (depth - level)
+    return tuple(pieces)
+
+
 def shadow_steps(model: Model, method, dt: float, substeps: int, c_run, inputs,
                  parameters: dict, guards: Safeguards | None = None, stepper=None):
     """The reference's tick from the C's state and time before each tick, with the C's
-    safeguards: ((ticks, nx) states, (ticks,) attempts: the steps tried in each tick)."""
-    stepper = stepper or reference.stepper(model, method, parameters)
-    taker = reference.TickTaker(model, stepper, dt, substeps, guards or Safeguards())
+    safeguards: ((ticks, nx) states, {tick: the Pieces it took} for each tick in which a step
+    was retried)."""
+    guards = guards or Safeguards()
+    recorder = _Recorder(stepper or reference.stepper(model, method, parameters))
+    taker = reference.TickTaker(model, recorder, dt, substeps, guards)
     out = np.full((c_run.completed, model.nx), np.nan)
-    attempts = np.full(c_run.completed, float(substeps))
+    retried = {}
     for k in range(c_run.completed):
-        before = taker.tally.steps + taker.tally.retried
+        recorder.calls = []
         x = taker.tick(c_run.ts[k], c_run.xs[k], inputs[k])
-        if x is not None:
-            out[k] = x
-        attempts[k] = max(float(substeps), taker.tally.steps + taker.tally.retried - before)
-    return out, attempts
+        if x is None:
+            continue
+        out[k] = x
+        if len(recorder.calls) > substeps:
+            retried[k] = taken_pieces(recorder.calls, dt / substeps, guards.retry_depth)
+    return out, retried
 
 
 def observed_ratios(diff: np.ndarray, bounds: np.ndarray) -> np.ndarray:
@@ -166,15 +199,16 @@ def cross_check(model: Model, method: Method, dt: float, substeps: int, precisio
         # with the C's tolerance and refreshes, not the reference's full Newton to roundoff.
         stepper = reference.stepper(ref_model, method, params,
                                     newton=generated_newton(model, precision, options))
-    shadow, attempts = shadow_steps(ref_model, method, dt, substeps, c_run, ref_u, params,
-                                    guards, stepper)
+    shadow, retried = shadow_steps(ref_model, method, dt, substeps, c_run, ref_u, params,
+                                   guards, stepper)
     diff = np.abs(c_run.xs[1:n + 1] - shadow)
     step = simplify(discretize(model, method, dt, substeps, **options))
+    # A retried tick is bounded piece by piece along the pieces the reference took (the C took
+    # the same ones where both fail alike): never as the full step, which the C did not take and
+    # which may have no solution at all.
     bounds = tick_bounds(step, precision, c_run.ts[:n], c_run.xs[:n], u[:n], tunables,
-                         reference_newton_stop=same_newton) if n else np.zeros((0, model.nx))
-    # A retried tick is several pieces, each with about a step's rounding: the bound of the
-    # tick times the pieces per substep (1 without retries).
-    bounds = bounds * (attempts / substeps)[:, None]
+                         reference_newton_stop=same_newton, retried=retried) \
+        if n else np.zeros((0, model.nx))
     ratios = observed_ratios(diff, bounds)
     per_state = ratios.max(axis=0) if n else np.zeros(model.nx)
     worst = int(np.argmax(per_state))
