@@ -51,7 +51,8 @@ from dataclasses import dataclass
 import numpy as np
 import sympy as sp
 
-from ..discretize import ELIMINATION, INVERSE, G, ImplicitStep, LinearSolve, StepProgram
+from ..discretize import (ELIMINATION, INVERSE, CoupledStage, G, ImplicitStep, LinearSolve,
+                          StepProgram)
 from ..emit.printer import MAX_EXPANDED_POWER
 from ..emit.structure import printed_product, printed_terms
 from ..errors import CheckError
@@ -404,7 +405,8 @@ class StepBound:
     """
 
     def __init__(self, step, precision: str, analysis_precision: str, ts, xs, us, tunables: dict,
-                 newton_stop: bool, scale: float = 1.0, position: int | None = None):
+                 newton_stop: bool, scale: float = 1.0, position: int | None = None,
+                 reference_form: bool = False):
         self.step, self.model = step, step.model
         self.ticks = len(ts)
         self.ar = Arithmetic(analysis_precision, self.ticks)
@@ -416,6 +418,9 @@ class StepBound:
         self.nx = self.model.nx
         self.pieces = step.safeguards.pieces
         self.scale, self.position = scale, position
+        # The reference's own Newton form (reference.steppers.implicit_stepper): every stage at
+        # once, then x + sum (h b_p) f(x + Z_p), whatever the C's stage order and update.
+        self.reference_form = reference_form
 
     # -- pieces shared by the schemes
     def env(self, t: Bounded, x: list[Bounded]) -> dict:
@@ -542,6 +547,9 @@ class StepBound:
         step = self.step
         if isinstance(step, StepProgram):
             return self.explicit(t, x)
+        if self.reference_form and step.scheme in (DIAGONALLY_IMPLICIT, FULLY_IMPLICIT) \
+                and not step.linear:
+            return self.fully_implicit(t, x, *self.coupled_form())
         return {DIAGONALLY_IMPLICIT: self.dirk, FULLY_IMPLICIT: self.fully_implicit,
                 LINEARLY_IMPLICIT: self.rosenbrock, EXACT: self.exact}[step.scheme](t, x)
 
@@ -624,13 +632,29 @@ class StepBound:
             k[stage.index] = [ar.solved(diff[:, i] / gv, e_k[:, i]) for i in range(nx)]
         return self.update(x, step.weights, k)
 
-    def fully_implicit(self, t, x):
+    def coupled_form(self) -> tuple:
+        """The step's tableau as one coupled system (stages, weights): CoupledStages with every
+        h*a_pq, the weights (p, h*b_p); for the reference's form of any Newton method."""
+        method, h = self.step.method, self.step.h
+        s = len(method.b)
+        stages = tuple(CoupledStage(index=p, c=method.c[p], time_offset=method.c[p] * h,
+                                    terms=tuple((q, h * method.a[p][q]) for q in range(s)
+                                                if method.a[p][q] != 0))
+                       for p in range(s))
+        return stages, tuple((p, h * method.b[p]) for p in range(s) if method.b[p] != 0)
+
+    def fully_implicit(self, t, x, stages=None, weights=None):
+        """stages, weights: a coupled form other than the step's own (coupled_form), updated
+        from f at the stages."""
         ar, step, nx = self.ar, self.step, self.nx
-        s = len(step.stages)
+        z_weights = step.z_weights if stages is None else ()
+        weights = step.weights if weights is None else weights
+        stages = step.stages if stages is None else stages
+        s = len(stages)
         size = s * nx
-        times = [self.time(t, stage.time_offset) for stage in step.stages]
+        times = [self.time(t, stage.time_offset) for stage in stages]
         a = np.zeros((s, s))
-        for p, stage in enumerate(step.stages):
+        for p, stage in enumerate(stages):
             for q, c in stage.terms:
                 a[p, q] = self.per_h_value(c)
         eye = np.eye(size)
@@ -639,7 +663,7 @@ class StepBound:
             f = [self.rates(times[p], [ar.add(x[i], z[p * nx + i]) for i in range(nx)])
                  for p in range(s)]
             out = []
-            for p, stage in enumerate(step.stages):
+            for p, stage in enumerate(stages):
                 for i in range(nx):
                     total = self.combination(None, [(c, f[q][i]) for q, c in stage.terms])
                     out.append(ar.add(total if total is not None else ar.literal(0),
@@ -676,12 +700,12 @@ class StepBound:
             stop = self.stop_allowance(frozen, frozen - m_z, np.tile(self.newton_scale(x), (1, s)))
             e_z = _apply(np.abs(np.linalg.inv(m_z)), rho) + ar.half_ulp(zstar) + stop
             z = [ar.solved(zstar[:, i], e_z[:, i]) for i in range(size)]
-        if step.z_weights:
+        if z_weights:
             return [self.combination(x[i], [(ar.literal(d), z[p * nx + i])
-                                            for p, d in step.z_weights]) for i in range(nx)]
+                                            for p, d in z_weights]) for i in range(nx)]
         f = {p: self.rates(times[p], [ar.add(x[i], z[p * nx + i]) for i in range(nx)])
-             for p, _ in step.weights}
-        return self.update(x, step.weights, f)
+             for p, _ in weights}
+        return self.update(x, weights, f)
 
     def rosenbrock(self, t, x):
         ar, step, nx = self.ar, self.step, self.nx
@@ -809,7 +833,7 @@ def piece_bounds(step, precision: str, t0: float, pieces, u, tunables: dict,
                       scale=2.0 ** -piece.depth, position=piece.position)
         c_part = StepBound(step, precision, precision, newton_stop=True, **common).tick(c_part)
         ref_part = StepBound(step, precision, "double", newton_stop=reference_newton_stop,
-                             **common).tick(ref_part)
+                             reference_form=reference_newton_stop, **common).tick(ref_part)
     return SAFETY * (c_part + ref_part)[0]
 
 
@@ -835,7 +859,7 @@ def tick_bounds(step, precision: str, ts, xs, us, tunables: dict,
         values = dict(ts=ts[plain], xs=xs[plain], us=us[plain], tunables=at(plain))
         c_part = StepBound(step, precision, precision, newton_stop=True, **values).tick()
         ref_part = StepBound(step, precision, "double", newton_stop=reference_newton_stop,
-                             **values).tick()
+                             reference_form=reference_newton_stop, **values).tick()
         out[plain] = SAFETY * (c_part + ref_part)
     for k, pieces in sorted(retried.items()):
         out[k] = piece_bounds(step, precision, ts[k], pieces, us[k], at(k),
