@@ -662,13 +662,15 @@ def test_the_advice_cost_includes_the_measured_refreshes():
     acc = recommend.accuracy(model, method, ROBERTSON_TICK, 1.0)
     # The first step from (1, 0, 0) refreshes J (as the C does), the later ones rarely do.
     assert acc.completed and acc.refreshes > 0 and acc.retry_rate == 0
-    plain, _ = cost_mod.operations_per_step(model, method, acc.newton_iterations)
+    plain, _ = cost_mod.operations_per_step(model, method, acc.newton_iterations,
+                                            dt=ROBERTSON_TICK)
     ops, note = cost_mod.operations_per_step(model, method, acc.newton_iterations,
-                                             acc.refreshes)
+                                             dt=ROBERTSON_TICK, refreshes=acc.refreshes)
     assert ops > plain and "Jacobian refreshes per step" in note
     # A retried step costs three steps: the failed attempt and its two halves.
     retried, note = cost_mod.operations_per_step(model, method, acc.newton_iterations,
-                                                 acc.refreshes, 0.1)
+                                                 dt=ROBERTSON_TICK, refreshes=acc.refreshes,
+                                                 retry_rate=0.1)
     assert retried == int(np.ceil(ops * 1.3)) and "10.00% of the steps retried" in note
 
 
