@@ -266,3 +266,20 @@ def test_the_order_study_measures_a_stiff_model_at_rest_from_the_centre_of_its_r
     kiln = load_model(Path(__file__).resolve().parent / "data" / "kiln.toml")
     study = measure_order(kiln, builtin("implicit-midpoint"))
     assert study.passed and abs(study.measured - 2) <= ORDER_TOLERANCE, study
+
+
+def test_the_order_study_lengthens_the_horizon_until_the_levels_settle():
+    # Radau IIA with three stages on the kiln: over the first horizon the filter's transient
+    # decays faster than order 5 (local orders about 11, 6.4, 5.0, 4.9) and the levels reach the
+    # rounding floor before three of them settle; a fit of the first three gave 8.96. Over a
+    # horizon 8^k times longer the slow modes' error dominates and the study measures the
+    # published order 5 (Hairer & Wanner, Solving ODEs II, section IV.5, Table 5.6).
+    from codegen.verify import measure_order
+    from codegen.verify.order import ORDER_HORIZON_STRETCH, order_horizon
+
+    kiln = load_model(Path(__file__).resolve().parent / "data" / "kiln.toml")
+    study = measure_order(kiln, builtin("radau-iia3"))
+    assert study.passed and abs(study.measured - 5) <= ORDER_TOLERANCE, study
+    centre = [0.5 * (s.range[0] + s.range[1]) for s in kiln.states]
+    first = order_horizon(kiln, np.array([0.75]), centre)
+    assert study.horizon > 2 * ORDER_HORIZON_STRETCH * first, (study.horizon, first)

@@ -37,6 +37,9 @@ ORDER_MAX_LEVELS = 14
 ORDER_MIN_COARSE_ERROR = 1e-8
 ORDER_HORIZON_STRETCH = 8.0
 ORDER_MAX_STRETCHES = 6
+# A ladder that never settles (no three levels with agreeing local orders above the floor) is
+# tried again over a horizon ORDER_HORIZON_STRETCH times longer, at most this many times.
+ORDER_SETTLE_STRETCHES = 3
 
 
 @dataclass(frozen=True)
@@ -205,13 +208,8 @@ def measure_order(model: Model, method: Method, expected: int | None = None,
     return study
 
 
-def _study(model: Model, method: Method, expected: int | None, progress,
-           options: dict | None) -> OrderStudy:
-    expected = expected or method.order
-    u = constant_inputs(model)
-    x0, horizon, exact, scale = _setting(model, method, u)
-    if method.kind == EXACT:
-        return _exact_study(model, method, u, x0, horizon, exact, scale, options, progress)
+def _ladder(model: Model, method: Method, u, x0, horizon: float, exact, scale: float):
+    """(steps, reference errors at T) of the reference halving the step until the floor."""
     floor = ORDER_ERROR_FLOOR["double"]
     steps, ref_errors = [], []
     for level in range(1, ORDER_MAX_LEVELS + 1):
@@ -222,7 +220,41 @@ def _study(model: Model, method: Method, expected: int | None, progress,
         ref_errors.append(err)
         if np.isfinite(err) and err < floor * scale:
             break
+    return steps, ref_errors
+
+
+def _settled(window: list[int], errors: list[float]) -> bool:
+    """Whether the window holds three consecutive levels whose local orders agree."""
+    return any(window[k + 2] - window[k] == 2 and _local_orders_agree(errors, window[k])
+               for k in range(len(window) - 2))
+
+
+def _study(model: Model, method: Method, expected: int | None, progress,
+           options: dict | None) -> OrderStudy:
+    expected = expected or method.order
+    u = constant_inputs(model)
+    x0, horizon, exact, scale = _setting(model, method, u)
+    if method.kind == EXACT:
+        return _exact_study(model, method, u, x0, horizon, exact, scale, options, progress)
+    floor = ORDER_ERROR_FLOOR["double"]
+    steps, ref_errors = _ladder(model, method, u, x0, horizon, exact, scale)
     idx = _window(ref_errors, scale, floor)
+    # A ladder without three settled levels before the floor is still pre-asymptotic (on a stiff
+    # model, the fast mode's transient decays faster than the method's order while the slow modes
+    # barely move): a longer horizon lets the slow modes' error, of the method's order, dominate.
+    # The first horizon that settles is taken; none settles, the first ladder stays.
+    longer = horizon
+    for _ in range(ORDER_SETTLE_STRETCHES if not _settled(idx, ref_errors) else 0):
+        longer *= ORDER_HORIZON_STRETCH
+        end = reference.high_accuracy(model, longer, u[None, :], x0=x0, rtol=1e-13).xs[-1]
+        if not np.all(np.isfinite(end)):
+            break
+        wide = max(float(np.max(np.abs(end))), 1e-300)
+        trial = _ladder(model, method, u, x0, longer, end, wide)
+        trial_idx = _window(trial[1], wide, floor)
+        if _settled(trial_idx, trial[1]):
+            horizon, exact, scale, (steps, ref_errors), idx = longer, end, wide, trial, trial_idx
+            break
     if len(idx) < 3:
         if all(e <= floor * scale for e in ref_errors if np.isfinite(e)) and ref_errors[0] < floor * scale:
             return OrderStudy(expected, horizon, tuple(steps), (), tuple(ref_errors), None, True,
