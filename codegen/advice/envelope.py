@@ -33,6 +33,17 @@ class OperatingPoint:
     parameters: tuple[tuple[str, float], ...]
 
 
+def place(where: str, i: int, quantity, value: float, x, u, p: dict) -> None:
+    """Set one coordinate of an operating point: state i ("x"), input i ("u") or the parameter
+    quantity.name (anything else) to value, in place."""
+    if where == "x":
+        x[i] = value
+    elif where == "u":
+        u[i] = value
+    else:
+        p[quantity.name] = value
+
+
 def envelope(model: Model) -> tuple[list[OperatingPoint], list[str]]:
     """Operating points from the ranges, and the names of the ranged quantities.
 
@@ -50,13 +61,7 @@ def envelope(model: Model) -> tuple[list[OperatingPoint], list[str]]:
     def point(fractions) -> OperatingPoint:
         x, u, p = list(base_x), list(base_u), dict(base_p)
         for (where, i, q), f in zip(dims, fractions):
-            value = q.range[0] + f * (q.range[1] - q.range[0])
-            if where == "x":
-                x[i] = value
-            elif where == "u":
-                u[i] = value
-            else:
-                p[q.name] = value
+            place(where, i, q, q.range[0] + f * (q.range[1] - q.range[0]), x, u, p)
         return OperatingPoint(tuple(map(float, x)), tuple(map(float, u)),
                               tuple(sorted((k, float(v)) for k, v in p.items())))
 

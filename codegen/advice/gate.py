@@ -33,7 +33,7 @@ from ..methods import EXACT
 from ..methods.analysis import analyse, in_stability_region, stability_limit
 from ..model import Model
 from ..reference.numeric import lambdify
-from .envelope import ZERO_EIGENVALUE, decaying, eigenvalues, envelope
+from .envelope import ZERO_EIGENVALUE, decaying, eigenvalues, envelope, place
 
 # Up to this many states the dense eigenvalues at every envelope point cost well under a second
 # (an eigen-decomposition of a 64 x 64 matrix takes about a millisecond).
@@ -186,13 +186,7 @@ def _sparse_points(model: Model) -> list[tuple[np.ndarray, np.ndarray, dict[str,
     for high in patterns[: SPARSE_POINTS - 1]:
         x, u, p = x0.copy(), u0.copy(), dict(p0)
         for (where, i, q), up in zip(ranged, high):
-            value = float(q.range[1] if up else q.range[0])
-            if where == "x":
-                x[i] = value
-            elif where == "u":
-                u[i] = value
-            else:
-                p[q.name] = value
+            place(where, i, q, float(q.range[1] if up else q.range[0]), x, u, p)
         points.append((x, u, p))
     return points
 
