@@ -104,3 +104,16 @@ def pytest_terminal_summary(terminalreporter):
             terminalreporter.write_line(f"{count:7d}  {nodeid}")
         terminalreporter.write_line(f"{sum(counts.values()):7d}  generated cases in "
                                     f"{len(counts)} fuzz tests")
+
+
+def readme_indented_block(after: str) -> list[str]:
+    """The first indented block of the README after the line that contains `after`."""
+    text = (ROOT / "README.md").read_text(encoding="utf-8")
+    section = text.split(after, 1)[1]
+    lines = []
+    for line in section.splitlines()[1:]:
+        if line.startswith("    "):
+            lines.append(line[4:])
+        elif lines:
+            break
+    return lines

@@ -29,7 +29,7 @@ from codegen.simplify import simplify
 from codegen.verify import bound, check, cross_check, crosscheck
 from codegen.verify.audit import audit_coefficients
 
-from conftest import DEMO_MODELS, EXAMPLES
+from conftest import DEMO_MODELS, EXAMPLES, readme_indented_block
 
 # Ticks per example: the demo's tick for the axis, and ticks where every method is stable.
 EXAMPLE_DT = {"heater": 0.5, "axis": 2e-4, "battery": 1.0}
@@ -382,26 +382,13 @@ def test_the_whole_check_fails_on_a_planted_error(axis, monkeypatch):
     assert not report.passed and not report.cross_checks[0].coefficients.passed
 
 
-def readme_block(after: str) -> list[str]:
-    """The first indented block of the README after the line that contains `after`."""
-    text = (EXAMPLES.parent / "README.md").read_text(encoding="utf-8")
-    section = text.split(after, 1)[1]
-    lines = []
-    for line in section.splitlines()[1:]:
-        if line.startswith("    "):
-            lines.append(line[4:])
-        elif lines:
-            break
-    return lines
-
-
 def test_the_readme_shows_what_the_demo_prints():
     runner = CliRunner()
     with runner.isolated_filesystem():
         result = runner.invoke(main, ["demo"])
     assert result.exit_code == 0, result.output
     printed = [line for line in result.stdout.splitlines() if not line.startswith("... ")]
-    shown = readme_block("The demo\nprints:")
+    shown = readme_indented_block("The demo\nprints:")
     assert len(printed) == len(shown)
     # The counts are exact; the measured figures may move in their last digits with the C
     # library, so they are compared as text with every number masked. The README abbreviates

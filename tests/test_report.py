@@ -19,7 +19,7 @@ from codegen.verify import CheckReport, CrossCheck, OrderStudy
 from codegen.verify.audit import CoefficientAudit
 from codegen.verify.estimate import EstimateCheck
 
-from conftest import ROOT
+from conftest import readme_indented_block
 
 STRICT = "gcc -std=c99 -Wall ... -Werror -ffp-contract=off -O2 -c axis.c -o out.o"
 
@@ -58,15 +58,7 @@ def axis_report(passed=True, order=True) -> CheckReport:
 
 def readme_check_block() -> list[str]:
     """The indented example under 'Reading the check output' in the README."""
-    text = (ROOT / "README.md").read_text(encoding="utf-8")
-    section = text.split("## Reading the check output", 1)[1]
-    lines = []
-    for line in section.splitlines()[1:]:
-        if line.startswith("    "):
-            lines.append(line[4:])
-        elif lines:
-            break
-    return lines
+    return readme_indented_block("## Reading the check output")
 
 
 def test_check_lines_are_the_readme_s_example():
