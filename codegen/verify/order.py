@@ -107,10 +107,14 @@ def _asymptotic(window: list[int], errors: list[float]) -> list[int]:
     The deepest run of three whose two local orders agree to ORDER_AGREEMENT; when no run
     agrees (too few levels reach it), the last three, as before.
     """
+    return (_settled_runs(window, errors) or [window[-3:]])[-1]
+
+
+def _settled_runs(window: list[int], errors: list[float]) -> list[list[int]]:
+    """The runs of three consecutive levels of the window whose local orders agree."""
     runs = [window[k:k + 3] for k in range(len(window) - 2)
             if window[k + 2] - window[k] == 2]
-    settled = [r for r in runs if _local_orders_agree(errors, r[0])]
-    return (settled or [window[-3:]])[-1]
+    return [r for r in runs if _local_orders_agree(errors, r[0])]
 
 
 def fitted_order(steps, errors) -> float:
@@ -223,12 +227,6 @@ def _ladder(model: Model, method: Method, u, x0, horizon: float, exact, scale: f
     return steps, ref_errors
 
 
-def _settled(window: list[int], errors: list[float]) -> bool:
-    """Whether the window holds three consecutive levels whose local orders agree."""
-    return any(window[k + 2] - window[k] == 2 and _local_orders_agree(errors, window[k])
-               for k in range(len(window) - 2))
-
-
 def _study(model: Model, method: Method, expected: int | None, progress,
            options: dict | None) -> OrderStudy:
     expected = expected or method.order
@@ -244,7 +242,7 @@ def _study(model: Model, method: Method, expected: int | None, progress,
     # barely move): a longer horizon lets the slow modes' error, of the method's order, dominate.
     # The first horizon that settles is taken; none settles, the first ladder stays.
     longer = horizon
-    for _ in range(ORDER_SETTLE_STRETCHES if not _settled(idx, ref_errors) else 0):
+    for _ in range(ORDER_SETTLE_STRETCHES if not _settled_runs(idx, ref_errors) else 0):
         longer *= ORDER_HORIZON_STRETCH
         end = reference.high_accuracy(model, longer, u[None, :], x0=x0, rtol=1e-13).xs[-1]
         if not np.all(np.isfinite(end)):
@@ -252,7 +250,7 @@ def _study(model: Model, method: Method, expected: int | None, progress,
         wide = max(float(np.max(np.abs(end))), 1e-300)
         trial = _ladder(model, method, u, x0, longer, end, wide)
         trial_idx = _window(trial[1], wide, floor)
-        if _settled(trial_idx, trial[1]):
+        if _settled_runs(trial_idx, trial[1]):
             horizon, exact, scale, (steps, ref_errors), idx = longer, end, wide, trial, trial_idx
             break
     if len(idx) < 3:
